@@ -1,0 +1,38 @@
+# `make demo` and `make test` set everything up from scratch in .venv and then do their job.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test lint docs bench clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e ".[test]"
+	touch $(STAMP)
+
+demo: $(STAMP)
+	@mkdir -p demo_output
+	$(BIN)/pairspread group-spread sample_layers/quenwick.gpkg --layer households \
+	    --group-by district --weight residents --output demo_output/spread.gpkg --overwrite
+	$(BIN)/pairspread group-spread sample_layers/households_east.shp --group-by district,tenure \
+	    --output demo_output/spread_east.csv --overwrite
+	@echo "The tables went to demo_output/spread.gpkg (table 'group_spread') and demo_output/spread_east.csv:"
+	@$(BIN)/python -c "import pyogrio; print(pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread').to_string(index=False))"
+
+test: $(STAMP) lint
+	$(BIN)/python -m pytest -q toolbox tests
+
+lint: $(STAMP)
+	$(BIN)/ruff check toolbox tests bench
+	$(BIN)/python -m toolbox.docgen --check docs/scripts.md
+
+docs: $(STAMP)
+	$(BIN)/python -m toolbox.docgen docs/scripts.md
+
+bench: $(STAMP)
+	$(BIN)/python bench/bench_group_spread.py
+
+clean:
+	rm -rf $(VENV) demo_output bench/data

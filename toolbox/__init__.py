@@ -1,0 +1,53 @@
+"""pairspread: total and mean distances between points, per group, with guaranteed bounds.
+
+The scripts of the pack are declared in ``toolbox/manifest.toml``; each is a Python function here
+(``group_spread``), a subcommand of the ``pairspread`` command line, and reachable through
+:func:`run`. The array kernels (numpy in, numbers out) are public too.
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .errors import (
+    GeometryError,
+    InputError,
+    ManifestError,
+    OutputError,
+    PairspreadError,
+    ParameterError,
+)
+from .kernels import (
+    GroupPairSums,
+    PairSum,
+    directions_for_tolerance,
+    exact_pair_sum,
+    grouped_pair_sums,
+    pair_distance_sum,
+    projection_error,
+    projection_factors,
+)
+from .runner import run
+from .api import script_function as _script_function
+
+group_spread = _script_function("group-spread")
+
+__all__ = [
+    "__version__",
+    "run",
+    "group_spread",
+    "pair_distance_sum",
+    "grouped_pair_sums",
+    "exact_pair_sum",
+    "directions_for_tolerance",
+    "projection_error",
+    "projection_factors",
+    "PairSum",
+    "GroupPairSums",
+    "PairspreadError",
+    "ParameterError",
+    "InputError",
+    "GeometryError",
+    "OutputError",
+    "ManifestError",
+]

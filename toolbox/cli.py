@@ -1,0 +1,138 @@
+"""The ``pairspread`` command line, generated from the manifest.
+
+``pairspread list`` and ``pairspread describe NAME [--json]`` show the pack; every script is a
+subcommand whose options come from its declared parameters. Values are passed as text to the
+pack's one validator, so messages are the same as from Python. User mistakes print one line on
+stderr and exit non-zero; ``--debug`` shows the traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import warnings
+from collections.abc import Sequence
+
+from . import __version__
+from .errors import PairspreadError
+from .manifest import Param, Script, get_script, scripts
+from .runner import run_script
+
+__all__ = ["main", "build_parser"]
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # one line, not a usage dump
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
+def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
+    help_text = p.help
+    if p.default not in (None, False):
+        help_text += f" Default: {p.default}."
+    if p.kind == "dataset":
+        parser.add_argument(p.name, metavar="INPUT", help=help_text)
+    elif p.kind == "flag":
+        parser.add_argument(p.option, dest=p.name, action="store_true", default=None, help=help_text)
+    else:
+        metavar = {"field-list": "F1,F2", "field": "FIELD", "output-table": "PATH"}.get(p.kind)
+        if p.kind == "choice":
+            metavar = "{" + "|".join(p.choices) + "}"
+        parser.add_argument(p.option, dest=p.name, metavar=metavar or p.name.upper(), help=help_text)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="pairspread", description="Distances between points, per group, with guaranteed bounds.")
+    parser.add_argument("--version", action="version", version=f"pairspread {__version__}")
+    parser.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.add_parser("list", help="List the scripts of the pack.")
+    describe = sub.add_parser("describe", help="Show a script's parameters.")
+    describe.add_argument("script", metavar="SCRIPT")
+    describe.add_argument("--json", action="store_true", help="Print the description as JSON.")
+    for script in scripts().values():
+        sp = sub.add_parser(script.name, help=script.summary, description=script.summary)
+        for p in script.params:
+            _add_param(sp, p)
+    return parser
+
+
+def _describe_text(script: Script) -> str:
+    lines = [f"{script.name}: {script.summary}", ""]
+    for p in script.params:
+        spelling = "INPUT" if p.kind == "dataset" else p.option
+        extra = []
+        if p.choices:
+            extra.append("one of " + ", ".join(p.choices))
+        if p.min is not None or p.max is not None:
+            extra.append(f"range [{p.min}, {p.max}]")
+        if p.default not in (None, False):
+            extra.append(f"default {p.default}")
+        suffix = f" ({'; '.join(extra)})" if extra else ""
+        lines.append(f"  {spelling:<16} {p.kind}{suffix}")
+        lines.append(f"  {'':<16} {p.help}")
+    return "\n".join(lines)
+
+
+def _print_table(table) -> None:
+    import pandas as pd
+
+    shown = table.copy()
+    for column in shown.columns:  # a null group key reads as empty, as in the CSV output
+        if not pd.api.types.is_numeric_dtype(shown[column]):
+            shown[column] = shown[column].astype(object).where(shown[column].notna(), "")
+    with pd.option_context("display.max_rows", 200, "display.width", 200, "display.max_columns", 50):
+        print(shown.to_string(index=False, float_format=lambda v: f"{v:.6g}"))
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the console script and of ``python -m toolbox``."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in argv
+    try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if args.command is None:
+            parser.print_help()
+            return 0
+        if args.command == "list":
+            for script in scripts().values():
+                print(f"{script.name:<20} {script.summary}")
+            return 0
+        if args.command == "describe":
+            script = get_script(args.script)
+            print(json.dumps(script.describe(), indent=2) if args.json else _describe_text(script))
+            return 0
+        script = get_script(args.command)
+        values = {p.name: getattr(args, p.name) for p in script.params}
+        values = {k: v for k, v in values.items() if v is not None}
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", UserWarning)
+            result, written = run_script(script, values)
+        for w in caught:
+            print(f"pairspread: warning: {w.message}", file=sys.stderr)
+        if written is None:
+            _print_table(result)
+        elif written != "standard output" and not values.get("quiet"):
+            print(f"pairspread: wrote {len(result)} row(s) to {written}", file=sys.stderr)
+        return 0
+    except PairspreadError as exc:
+        if debug:
+            raise
+        print(f"pairspread: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("pairspread: interrupted; no output was written.", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return 141
+    except Exception as exc:  # a bug or an unforeseen library failure: still one line
+        if debug:
+            raise
+        print(
+            f"pairspread: error: unexpected {type(exc).__name__}: {exc} (run again with --debug "
+            "for the traceback and please report it)",
+            file=sys.stderr,
+        )
+        return 1

@@ -1,0 +1,98 @@
+"""From attribute columns to what the kernels take: group codes, weights, planar units.
+
+Shared by every script, so that grouping, weight checks and CRS rules mean the same thing
+everywhere.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+
+__all__ = ["Grouping", "group_features", "feature_weights", "planar_units"]
+
+
+@dataclass(frozen=True)
+class Grouping:
+    """Group code of every feature and the table of group keys (one row per code)."""
+
+    codes: np.ndarray
+    keys: pd.DataFrame
+
+    @property
+    def count(self) -> int:
+        return len(self.keys)
+
+
+def group_features(attributes: pd.DataFrame, fields: Sequence[str]) -> Grouping:
+    """Code the features by the combination of their values in ``fields``.
+
+    No fields: every feature is in one group (and ``keys`` has no columns). Null values form
+    their own group; groups are ordered by their keys, nulls last.
+    """
+    n = len(attributes)
+    if not fields:
+        return Grouping(np.zeros(n, dtype=np.int64), pd.DataFrame(index=range(1)))
+    grouped = attributes.groupby(list(fields), dropna=False, sort=True, observed=True)
+    codes = grouped.ngroup().to_numpy(dtype=np.int64)
+    keys = grouped.size().reset_index()[list(fields)]
+    return Grouping(codes, keys.reset_index(drop=True))
+
+
+def feature_weights(attributes: pd.DataFrame, field: str | None, label: str) -> np.ndarray | None:
+    """Validated non-negative weights from ``field`` (None when no weight field is given)."""
+    if field is None:
+        return None
+    column = attributes[field]
+    if not (pd.api.types.is_numeric_dtype(column) or column.isna().all()) or pd.api.types.is_bool_dtype(
+        column
+    ):
+        raise InputError(
+            f"The weight field {field!r} of {label} holds {column.dtype} values, not numbers; "
+            "choose a numeric field."
+        )
+    values = column.to_numpy(dtype=np.float64, na_value=np.nan)
+    problems = {
+        "null or NaN": np.isnan(values),
+        "infinite": np.isinf(values),
+        "negative": values < 0,
+    }
+    for what, bad in problems.items():
+        if bad.any():
+            rows = np.flatnonzero(bad)
+            shown = ", ".join(str(int(r)) for r in rows[:5])
+            raise InputError(
+                f"{rows.size} feature(s) of {label} have a {what} weight in {field!r} (rows "
+                f"{shown}{', ...' if rows.size > 5 else ''}); weights must be finite and "
+                "non-negative: fix them or filter them out with --where."
+            )
+    return values
+
+
+def planar_units(crs, label: str) -> str:
+    """Name of the linear unit of a projected CRS; refuses geographic ones.
+
+    A missing CRS is allowed with a warning: distances are then in the layer's own units.
+    """
+    if crs is None:
+        warnings.warn(
+            f"{label} has no CRS; distances are computed in its own coordinate units "
+            "(units reported as 'unknown').",
+            UserWarning,
+            stacklevel=3,
+        )
+        return "unknown"
+    if crs.is_geographic:
+        raise InputError(
+            f"{label} is in a geographic CRS ({crs.name}), so its coordinates are degrees and planar "
+            "distances would be wrong; reproject it to a projected CRS in metres first (for "
+            "example a UTM zone or a national grid) and run again."
+        )
+    axes = crs.axis_info
+    return axes[0].unit_name if axes else "unknown"

@@ -1,0 +1,102 @@
+"""Run any manifest script: validate, check the output first, compute, write.
+
+The command line and the Python API both end here, so a script behaves the same however it
+is called.
+"""
+
+from __future__ import annotations
+
+import inspect
+import os
+import sys
+from typing import Any
+
+from . import layers
+from .manifest import Script, get_script, validate
+
+__all__ = ["run", "run_script"]
+
+
+class _ProgressBar:
+    """A tqdm bar on stderr, shown only on a terminal and never with ``quiet``."""
+
+    def __init__(self, label: str, quiet: bool):
+        self.bar = None
+        self.enabled = not quiet and sys.stderr.isatty()
+        self.label = label
+
+    def __call__(self, done: int, total: int) -> None:
+        if not self.enabled or total <= 0:
+            return
+        if self.bar is None:
+            from tqdm import tqdm
+
+            self.bar = tqdm(total=total, desc=self.label, unit="pt", unit_scale=True, leave=False)
+        self.bar.n = done
+        self.bar.refresh()
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
+    data = values.get("data")
+    if isinstance(data, (str, os.PathLike)):
+        return [(os.fspath(data), values.get("layer"))]
+    return []
+
+
+def run_script(script: Script, values: dict[str, Any]) -> tuple[Any, str | None]:
+    """Run ``script`` with raw parameter values; returns the result and where it was written."""
+    values = validate(script, values)
+    runner_params = {p.name for p in script.params if p.runner}
+    output = values.get("output")
+    if output is not None:
+        layers.check_table_output(
+            output, values.get("output_layer") or "", bool(values.get("overwrite")), inputs=_inputs(values)
+        )
+    function = script.load()
+    call = {k: v for k, v in values.items() if k not in runner_params}
+    bar = _ProgressBar(script.name, bool(values.get("quiet", True)))
+    if "progress" in inspect.signature(function).parameters:
+        call["progress"] = bar
+    try:
+        result = function(**call)
+    finally:
+        bar.close()
+    written = None
+    if output is not None:
+        written = layers.write_table(
+            result, output, layer_name=values.get("output_layer") or "", overwrite=bool(values.get("overwrite"))
+        )
+    return result, written
+
+
+def run(name: str, /, **params: Any) -> Any:
+    """Run the manifest script ``name`` with keyword parameters and return its result.
+
+    Parameters
+    ----------
+    name : str
+        Script name as listed by ``pairspread list``, e.g. ``"group-spread"``.
+    **params
+        The script's parameters under their manifest names (``group_by``, ``tolerance``, ...).
+        With ``output`` the result is also written there.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The script's result table.
+
+    Examples
+    --------
+    >>> import geopandas, shapely
+    >>> pts = geopandas.GeoDataFrame(geometry=shapely.points([0, 3, 0], [0, 0, 4]), crs="EPSG:32705")
+    >>> run("group-spread", data=pts, tolerance=0)["total_dist"].tolist()
+    [12.0]
+    """
+    script = get_script(name)
+    params.setdefault("quiet", True)
+    result, _ = run_script(script, params)
+    return result

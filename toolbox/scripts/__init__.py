@@ -1,0 +1,1 @@
+"""The pack's scripts: one module each, declared in ``toolbox/manifest.toml``."""
