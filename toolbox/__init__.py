@@ -9,6 +9,7 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .api import script_function as _script_function
 from .errors import (
     GeometryError,
     InputError,
@@ -28,7 +29,6 @@ from .kernels import (
     projection_factors,
 )
 from .runner import run
-from .api import script_function as _script_function
 
 group_spread = _script_function("group-spread")
 

@@ -27,7 +27,13 @@ def _docstring(script: Script) -> str:
             kind = "{" + ", ".join(repr(c) for c in p.choices) + "}"
         default = "" if p.kind == "dataset" else f", default {p.default!r}"
         lines += [f"{p.name} : {kind}{default}", f"    {p.help}"]
-    lines += ["", "Returns", "-------", "pandas.DataFrame", "    The result table (also written to ``output`` if given)."]
+    lines += [
+        "",
+        "Returns",
+        "-------",
+        "pandas.DataFrame",
+        "    The result table (also written to ``output`` if given).",
+    ]
     lines += ["", f"Generated from the manifest entry {script.name!r}; see docs/scripts.md."]
     return "\n".join(lines)
 

@@ -43,7 +43,9 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="pairspread", description="Distances between points, per group, with guaranteed bounds.")
+    parser = _Parser(
+        prog="pairspread", description="Distances between points, per group, with guaranteed bounds."
+    )
     parser.add_argument("--version", action="version", version=f"pairspread {__version__}")
     parser.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
@@ -55,6 +57,7 @@ def build_parser() -> argparse.ArgumentParser:
         sp = sub.add_parser(script.name, help=script.summary, description=script.summary)
         for p in script.params:
             _add_param(sp, p)
+        sp.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
     return parser
 
 

@@ -185,8 +185,7 @@ def _check_points(x, y, weights):
         weights = np.ascontiguousarray(weights, dtype=np.float64)
         if weights.shape != x.shape:
             raise ParameterError(
-                f"weights must have one value per point. Got shape {weights.shape} for "
-                f"{x.shape[0]} points."
+                f"weights must have one value per point. Got shape {weights.shape} for {x.shape[0]} points."
             )
         bad = ~np.isfinite(weights) | (weights < 0)
         if bad.any():
@@ -474,7 +473,7 @@ def _projected_rows(cx, cy, cw, valid, n, cos_t, sin_t) -> np.ndarray:
         coef = np.where(tail, 0.0, 2 * rank - n[:, None] + 1)
     else:
         wsum = cw.sum(axis=1)[:, None]
-    for c, s_ in zip(cos_t, sin_t):
+    for c, s_ in zip(cos_t, sin_t, strict=True):
         p = cx * c + cy * s_
         p[~valid] = np.inf
         if cw is None:

@@ -86,9 +86,7 @@ def _resolve_layer(path: str, layer: str | None) -> str:
     if layer is None:
         if len(names) == 1:
             return names[0]
-        raise InputError(
-            f"{path!r} holds {len(names)} layers ({', '.join(names)}); choose one with --layer."
-        )
+        raise InputError(f"{path!r} holds {len(names)} layers ({', '.join(names)}); choose one with --layer.")
     if layer not in names:
         raise InputError(f"{path!r} has no layer {layer!r}; {_suggest(layer, names)}")
     return layer
@@ -203,7 +201,9 @@ def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
     wrong = ~np.isin(types, list(_POINT_TYPES))
     if wrong.any():
         kinds, counts = np.unique(types[wrong], return_counts=True)
-        listed = ", ".join(f"{c} {_TYPE_NAMES.get(int(k), str(k))}" for k, c in zip(kinds, counts))
+        listed = ", ".join(
+            f"{c} {_TYPE_NAMES.get(int(k), str(k))}" for k, c in zip(kinds, counts, strict=True)
+        )
         raise GeometryError(
             f"{label} has {int(wrong.sum())} feature(s) that are not points ({listed}); "
             "this script needs Point or MultiPoint features."
@@ -353,7 +353,9 @@ def write_table(table: pd.DataFrame, path: str, *, layer_name: str = "", overwri
         for leftover in (tmp, Path(str(tmp) + "-journal"), Path(str(tmp) + "-wal")):
             leftover.unlink(missing_ok=True)
         if isinstance(exc, OSError):
-            raise OutputError(f"Writing {path!r} failed: {exc.strerror or exc}; nothing was written.") from exc
+            raise OutputError(
+                f"Writing {path!r} failed: {exc.strerror or exc}; nothing was written."
+            ) from exc
         if isinstance(exc, Exception) and not isinstance(exc, OutputError):
             raise OutputError(f"Writing {path!r} failed: {_first_line(exc)}; nothing was written.") from exc
         raise

@@ -82,7 +82,7 @@ class Script:
     function: str
     params: tuple[Param, ...]
     pack: str = "pairspread"
-    extra: Mapping[str, Any] = field(default_factory=dict)
+    columns: Mapping[str, str] = field(default_factory=dict)
 
     @property
     def param_map(self) -> dict[str, Param]:
@@ -108,6 +108,7 @@ class Script:
             "summary": self.summary,
             "pack": self.pack,
             "params": [p.describe() for p in self.params],
+            "columns": dict(self.columns),
         }
 
 
@@ -175,6 +176,7 @@ def parse_manifest(text: str, *, where: str, package: str, shared: Mapping[str, 
                 function=entry.get("function", name.replace("-", "_")),
                 params=tuple(chosen),
                 pack=pack,
+                columns=dict(entry.get("columns", {})),
             )
         )
     return out

@@ -68,7 +68,10 @@ def run_script(script: Script, values: dict[str, Any]) -> tuple[Any, str | None]
     written = None
     if output is not None:
         written = layers.write_table(
-            result, output, layer_name=values.get("output_layer") or "", overwrite=bool(values.get("overwrite"))
+            result,
+            output,
+            layer_name=values.get("output_layer") or "",
+            overwrite=bool(values.get("overwrite")),
         )
     return result, written
 

@@ -7,20 +7,6 @@ import pandas as pd
 
 from .. import grouping, kernels, layers
 
-COLUMNS = (
-    "n_points",
-    "weight_sum",
-    "pair_weight",
-    "total_dist",
-    "total_lo",
-    "total_hi",
-    "mean_dist",
-    "rel_bound",
-    "method",
-    "directions",
-    "units",
-)
-
 
 def group_spread(
     data,
