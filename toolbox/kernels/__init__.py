@@ -1,0 +1,25 @@
+"""Array kernels: sums of pair distances, exact or by projection, with guaranteed intervals.
+
+numpy arrays in, numbers or arrays out. Nothing here reads files, knows about CRS objects or
+prints; progress is reported through an optional callback ``progress(done, total)``.
+"""
+
+from ._common import (
+    METHODS,
+    directions_for_tolerance,
+    projection_error,
+    projection_factors,
+)
+from .pairs import GroupPairSums, PairSum, exact_pair_sum, grouped_pair_sums, pair_distance_sum
+
+__all__ = [
+    "METHODS",
+    "GroupPairSums",
+    "PairSum",
+    "directions_for_tolerance",
+    "projection_error",
+    "projection_factors",
+    "exact_pair_sum",
+    "pair_distance_sum",
+    "grouped_pair_sums",
+]
