@@ -19,11 +19,15 @@ from .errors import (
     ParameterError,
 )
 from .kernels import (
+    CrossPairSums,
     GroupPairSums,
     PairSum,
+    PointSums,
+    cross_pair_sums,
     directions_for_tolerance,
     exact_pair_sum,
     grouped_pair_sums,
+    grouped_point_sums,
     pair_distance_sum,
     projection_error,
     projection_factors,
@@ -31,11 +35,19 @@ from .kernels import (
 from .runner import run
 
 group_spread = _script_function("group-spread")
+point_remoteness = _script_function("point-remoteness")
+cross_spread = _script_function("cross-spread")
 
 __all__ = [
     "__version__",
     "run",
     "group_spread",
+    "point_remoteness",
+    "cross_spread",
+    "grouped_point_sums",
+    "cross_pair_sums",
+    "PointSums",
+    "CrossPairSums",
     "pair_distance_sum",
     "grouped_pair_sums",
     "exact_pair_sum",

@@ -36,7 +36,13 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
     elif p.kind == "flag":
         parser.add_argument(p.option, dest=p.name, action="store_true", default=None, help=help_text)
     else:
-        metavar = {"field-list": "F1,F2", "field": "FIELD", "output-table": "PATH"}.get(p.kind)
+        metavar = {
+            "field-list": "F1,F2",
+            "field": "FIELD",
+            "output-table": "PATH",
+            "output-layer": "PATH",
+            "other-dataset": "DATASET",
+        }.get(p.kind)
         if p.kind == "choice":
             metavar = "{" + "|".join(p.choices) + "}"
         parser.add_argument(p.option, dest=p.name, metavar=metavar or p.name.upper(), help=help_text)

@@ -16,6 +16,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+import geopandas
 import numpy as np
 import pandas as pd
 import pyogrio
@@ -25,15 +26,17 @@ from .errors import GeometryError, InputError, OutputError, ParameterError
 
 __all__ = [
     "ENGINES",
-    "TABLE_SUFFIXES",
+    "TABLE_FORMATS",
+    "LAYER_FORMATS",
     "PointLayer",
     "read_points",
-    "check_table_output",
-    "write_table",
+    "read_layer",
+    "points_of",
+    "check_output",
+    "write_output",
 ]
 
 ENGINES = ("pyogrio", "fiona")
-TABLE_SUFFIXES = (".gpkg", ".csv", ".parquet")
 
 _POINT_TYPES = {0: "Point", 4: "MultiPoint"}
 _TYPE_NAMES = {
@@ -97,6 +100,30 @@ def _first_line(exc: BaseException) -> str:
     return text.splitlines()[0] if text else type(exc).__name__
 
 
+def _is_frame(data) -> bool:
+    return isinstance(data, geopandas.GeoDataFrame)
+
+
+def _open(data, layer, engine, where):
+    """Check a path and pick its layer; returns (path, layer name, label, field names)."""
+    if engine not in ENGINES:
+        raise ParameterError(f"engine must be one of {', '.join(ENGINES)}. Got {engine!r} instead.")
+    path = os.fspath(data)
+    if _is_local_path(path) and not Path(path).exists():
+        raise InputError(f"Input {path!r} does not exist; check the path.")
+    name = _resolve_layer(path, layer)
+    label = f"layer {name!r} of {path!r}"
+    info = pyogrio.read_info(path, layer=name)
+    return path, name, label, [str(f) for f in info["fields"]]
+
+
+def _reading_failed(exc, label, where, engine):
+    if isinstance(exc, ImportError):
+        return InputError(f"The {engine} engine is not installed: {exc}")
+    hint = " (check the --where filter)" if where else ""
+    return InputError(f"Reading {label} failed{hint}: {_first_line(exc)}")
+
+
 def read_points(
     data,
     *,
@@ -105,7 +132,7 @@ def read_points(
     where: str | None = None,
     engine: str = "pyogrio",
 ) -> PointLayer:
-    """Read the points of a layer and the named attribute fields.
+    """Read the points of a layer and the named attribute fields (only those).
 
     Parameters
     ----------
@@ -125,45 +152,59 @@ def read_points(
     PointLayer
     """
     fields = list(dict.fromkeys(fields))
-    if engine not in ENGINES:
-        raise ParameterError(f"engine must be one of {', '.join(ENGINES)}. Got {engine!r} instead.")
-    if hasattr(data, "geometry") and hasattr(data, "columns"):
-        frame = data
+    if _is_frame(data) or engine == "fiona":
+        frame, label = read_layer(data, layer=layer, where=where, engine=engine, columns=fields)
+        return points_of(frame, fields, label)
+    path, name, label, available = _open(data, layer, engine, where)
+    _check_fields(fields, available, label)
+    try:
+        meta, table = pyogrio.read_arrow(path, layer=name, columns=fields, where=where)
+    except Exception as exc:
+        raise _reading_failed(exc, label, where, engine) from exc
+    geom_name = meta["geometry_name"] or "wkb_geometry"
+    wkb = table.column(geom_name).to_numpy(zero_copy_only=False)
+    attributes = table.drop_columns([geom_name]).to_pandas()
+    return _points_from_wkb(attributes, wkb, meta["crs"], label)
+
+
+def read_layer(
+    data,
+    *,
+    layer: str | None = None,
+    where: str | None = None,
+    engine: str = "pyogrio",
+    columns: Sequence[str] | None = None,
+) -> tuple[geopandas.GeoDataFrame, str]:
+    """Read a whole layer (or the named ``columns``) as a GeoDataFrame, with a label for messages.
+
+    A GeoDataFrame passed in is returned as it is (never modified by any script).
+    """
+    if _is_frame(data):
         if where:
             raise ParameterError("A where filter applies to files only; filter the GeoDataFrame first.")
-        _check_fields(fields, [c for c in frame.columns if c != frame.geometry.name], "the GeoDataFrame")
-        label = "the GeoDataFrame"
-        attributes = pd.DataFrame(frame[fields]).reset_index(drop=True)
-        geometry = np.asarray(frame.geometry.values, dtype=object)
-        return _points_from_geometry(attributes, geometry, frame.crs, label)
-
-    path = os.fspath(data)
-    if _is_local_path(path) and not Path(path).exists():
-        raise InputError(f"Input {path!r} does not exist; check the path.")
-    name = _resolve_layer(path, layer)
-    label = f"layer {name!r} of {path!r}"
-    info = pyogrio.read_info(path, layer=name)
-    _check_fields(fields, [str(f) for f in info["fields"]], label)
+        if columns is not None:
+            _check_fields(columns, [c for c in data.columns if c != data.geometry.name], "the GeoDataFrame")
+        return data, "the GeoDataFrame"
+    path, name, label, available = _open(data, layer, engine, where)
+    if columns is not None:
+        _check_fields(columns, available, label)
     try:
         if engine == "pyogrio":
-            meta, table = pyogrio.read_arrow(path, layer=name, columns=fields, where=where)
-            geom_name = meta["geometry_name"] or "wkb_geometry"
-            wkb = table.column(geom_name).to_numpy(zero_copy_only=False)
-            attributes = table.drop_columns([geom_name]).to_pandas()
-            crs = meta["crs"]
-            return _points_from_wkb(attributes, wkb, crs, label)
-        import geopandas
-
-        frame = geopandas.read_file(path, layer=name, columns=fields, where=where, engine="fiona")
-    except (InputError, GeometryError):
-        raise
-    except ImportError as exc:
-        raise InputError(f"The {engine} engine is not installed: {exc}") from exc
+            frame = pyogrio.read_dataframe(path, layer=name, where=where, columns=columns, use_arrow=True)
+        else:
+            frame = geopandas.read_file(path, layer=name, where=where, columns=columns, engine="fiona")
     except Exception as exc:
-        hint = " (check the --where filter)" if where else ""
-        raise InputError(f"Reading {label} failed{hint}: {_first_line(exc)}") from exc
-    attributes = pd.DataFrame(frame[fields]).reset_index(drop=True)
-    return _points_from_geometry(attributes, np.asarray(frame.geometry.values), frame.crs, label)
+        raise _reading_failed(exc, label, where, engine) from exc
+    return frame, label
+
+
+def points_of(frame: geopandas.GeoDataFrame, fields: Sequence[str], label: str) -> PointLayer:
+    """The points of a GeoDataFrame and its named attribute fields."""
+    _check_fields(fields, [c for c in frame.columns if c != frame.geometry.name], label)
+    attributes = pd.DataFrame(frame[list(fields)]).reset_index(drop=True)
+    return _points_from_geometry(
+        attributes, np.asarray(frame.geometry.values, dtype=object), frame.crs, label
+    )
 
 
 def _check_fields(fields, available, label):
@@ -231,17 +272,24 @@ def _finish(attributes, x, y, feature, crs, label) -> PointLayer:
 # --------------------------------------------------------------------------------------------
 # writing
 
+#: output formats by suffix, for attribute tables and for layers (geometry kept)
+TABLE_FORMATS = {".gpkg": "gpkg", ".csv": "csv", ".parquet": "parquet"}
+LAYER_FORMATS = {".gpkg": "gpkg", ".shp": "shp", ".geojson": "geojson", ".parquet": "parquet"}
+_SHAPEFILE_PARTS = (".shp", ".shx", ".dbf", ".prj", ".cpg")
 
-def _table_kind(path: str) -> str:
-    if path == "-":
+
+def output_format(path: str, what: str = "table") -> str:
+    """Format name of an output path: the suffix decides; ``-`` is CSV on standard output."""
+    formats = TABLE_FORMATS if what == "table" else LAYER_FORMATS
+    if path == "-" and what == "table":
         return "stdout"
     suffix = Path(path).suffix.lower()
-    if suffix not in TABLE_SUFFIXES:
+    if suffix not in formats:
+        also = " or use '-' for CSV on standard output" if what == "table" else ""
         raise OutputError(
-            f"Cannot tell the output format of {path!r}; end it with "
-            f"{', '.join(TABLE_SUFFIXES)} or use '-' for CSV on standard output."
+            f"Cannot tell the output format of {path!r}; end it with {', '.join(formats)}{also}."
         )
-    return suffix[1:]
+    return formats[suffix]
 
 
 def _check_folder(path: Path):
@@ -274,37 +322,56 @@ def _umask() -> int:
     return mask
 
 
-def check_table_output(path: str, layer_name: str, overwrite: bool, *, inputs=()) -> None:
+def _shapefile_parts(target: Path) -> list[Path]:
+    return [target.with_suffix(suffix) for suffix in _SHAPEFILE_PARTS]
+
+
+def check_output(
+    path: str,
+    *,
+    what: str = "table",
+    layer_name: str = "",
+    overwrite: bool = False,
+    inputs=(),
+    fields: Sequence[str] = (),
+) -> None:
     """Refuse, before any work is done, an output that cannot or must not be written.
 
     Parameters
     ----------
     path : str
-        Output path (``.gpkg``, ``.csv``, ``.parquet``) or ``-`` for standard output.
+        Output path; its suffix picks the format (see ``TABLE_FORMATS`` and ``LAYER_FORMATS``).
+    what : {"table", "layer"}
+        An attribute table, or a layer with geometry.
     layer_name : str
-        Table name inside a GeoPackage.
+        Table or layer name inside a GeoPackage.
     overwrite : bool
-        Whether an existing table or file may be replaced.
+        Whether an existing table, layer or file may be replaced.
     inputs : sequence of (path, layer) pairs
         Layers being read, which are never replaced.
+    fields : sequence of str
+        Field names of a layer output, checked against Shapefile's 10-character limit.
     """
-    kind = _table_kind(path)
+    kind = output_format(path, what)
     if kind == "stdout":
         return
     target = Path(path)
     _check_folder(target)
     if target.is_dir():
         raise OutputError(f"The output {path!r} is a folder; name a file.")
+    for in_path, in_layer in inputs:
+        same = target.exists() and Path(in_path).exists() and os.path.samefile(in_path, target)
+        if same and kind == "gpkg" and in_layer is None:
+            names = _gpkg_layers(target)  # the layer that will be read is the only one
+            in_layer = names[0] if len(names) == 1 else None
+        if same and (kind != "gpkg" or in_layer == layer_name):
+            raise OutputError(
+                f"The output {path!r} would replace the input; choose another "
+                f"{'--output-layer' if kind == 'gpkg' else '--output'}."
+            )
     if kind == "gpkg":
         if not layer_name:
             raise ParameterError("The output layer name must not be empty.")
-        for in_path, in_layer in inputs:
-            same = target.exists() and Path(in_path).exists() and os.path.samefile(in_path, target)
-            if same and in_layer == layer_name:
-                raise OutputError(
-                    f"The output table {layer_name!r} would replace the input layer; "
-                    "choose another --output-layer."
-                )
         if target.exists():
             names = _gpkg_layers(target)
             if layer_name in names and not overwrite:
@@ -312,46 +379,74 @@ def check_table_output(path: str, layer_name: str, overwrite: bool, *, inputs=()
                     f"{path!r} already has a layer {layer_name!r}; pass --overwrite to replace it "
                     "or choose another --output-layer."
                 )
-    elif target.exists() and not overwrite:
+        return
+    if kind == "shp":
+        shortened: dict[str, str] = {}
+        for name in fields:
+            short = name[:10].lower()
+            if short in shortened:
+                raise OutputError(
+                    f"Fields {shortened[short]!r} and {name!r} would both become {name[:10]!r} in "
+                    "a Shapefile (10-character names); rename one or write a GeoPackage instead."
+                )
+            shortened[short] = name
+        existing = [p for p in _shapefile_parts(target) if p.exists()]
+        if existing and not overwrite:
+            raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
+        return
+    if target.exists() and not overwrite:
         raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
 
 
-def write_table(table: pd.DataFrame, path: str, *, layer_name: str = "", overwrite: bool = False) -> str:
-    """Write an attribute table atomically; returns a description of where it went.
+def write_output(
+    frame: pd.DataFrame,
+    path: str,
+    *,
+    what: str = "table",
+    layer_name: str = "",
+    overwrite: bool = False,
+) -> str:
+    """Write a table or layer atomically; returns a description of where it went.
 
-    A GeoPackage output gets a non-spatial table and keeps every other layer it had: the
-    table is written into a copy beside the file, which then replaces it in one rename. CSV
-    and Parquet files are written under a temporary name and renamed. A failure leaves no
-    partial output and the previous file as it was.
+    A GeoPackage output gets the table or layer and keeps every other layer it had: it is
+    written into a copy beside the file, which then replaces it in one rename. Other formats
+    are written under a temporary name (a Shapefile's parts in a temporary folder) and renamed.
+    A failure leaves no partial output and the previous file as it was.
     """
-    check_table_output(path, layer_name, overwrite)
-    kind = _table_kind(path)
+    geometry_name = frame.geometry.name if _is_frame(frame) else None
+    fields = [c for c in frame.columns if c != geometry_name]
+    check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields)
+    kind = output_format(path, what)
     if kind == "stdout":
-        table.to_csv(sys.stdout, index=False)
+        frame.to_csv(sys.stdout, index=False)
         sys.stdout.flush()
         return "standard output"
     target = Path(path)
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
-    os.close(fd)
-    tmp = Path(tmp_name)
+    scratch = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent))
     try:
+        tmp = scratch / target.name
         if kind == "gpkg":
             if target.exists():
                 shutil.copyfile(target, tmp)
                 shutil.copymode(target, tmp)
-            else:
-                tmp.unlink()
-            pyogrio.write_dataframe(table, tmp, layer=layer_name, driver="GPKG")
+            pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG")
         elif kind == "csv":
-            table.to_csv(tmp, index=False)
+            frame.to_csv(tmp, index=False)
+        elif kind == "parquet":
+            frame.to_parquet(tmp, index=False)
+        elif kind == "geojson":
+            pyogrio.write_dataframe(frame, tmp, driver="GeoJSON")
         else:
-            table.to_parquet(tmp, index=False)
-        if not target.exists():
-            os.chmod(tmp, 0o666 & ~_umask())  # mkstemp made it private; give the usual mode
-        os.replace(tmp, target)
+            pyogrio.write_dataframe(frame, tmp, driver="ESRI Shapefile", encoding="UTF-8")
+        produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
+        for part in produced:
+            final = target.parent / part.name
+            if not final.exists():
+                os.chmod(part, 0o666 & ~_umask())
+            else:
+                shutil.copymode(final, part)
+            os.replace(part, final)
     except BaseException as exc:
-        for leftover in (tmp, Path(str(tmp) + "-journal"), Path(str(tmp) + "-wal")):
-            leftover.unlink(missing_ok=True)
         if isinstance(exc, OSError):
             raise OutputError(
                 f"Writing {path!r} failed: {exc.strerror or exc}; nothing was written."
@@ -359,6 +454,8 @@ def write_table(table: pd.DataFrame, path: str, *, layer_name: str = "", overwri
         if isinstance(exc, Exception) and not isinstance(exc, OutputError):
             raise OutputError(f"Writing {path!r} failed: {_first_line(exc)}; nothing was written.") from exc
         raise
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
     if kind == "gpkg":
-        return f"table {layer_name!r} in {path}"
+        return f"{'table' if what == 'table' else 'layer'} {layer_name!r} in {path}"
     return str(path)

@@ -27,6 +27,7 @@ __all__ = ["ENTRY_POINT_GROUP", "KINDS", "Param", "Script", "scripts", "get_scri
 ENTRY_POINT_GROUP = "pairspread.scripts"
 KINDS = (
     "dataset",
+    "other-dataset",
     "layer-name",
     "field",
     "field-list",
@@ -35,6 +36,7 @@ KINDS = (
     "choice",
     "text",
     "output-table",
+    "output-layer",
     "output-layer-name",
     "flag",
 )
@@ -158,10 +160,11 @@ def parse_manifest(text: str, *, where: str, package: str, shared: Mapping[str, 
             )
         chosen = []
         defaults = entry.get("defaults", {})
+        own = {n: _param(n, spec, where) for n, spec in entry.get("declare", {}).items()}
         for pname in entry.get("params", []):
-            if pname not in params:
+            p = own.get(pname) or params.get(pname)
+            if p is None:
                 raise ManifestError(f"{where}: script {name!r} uses undeclared parameter {pname!r}.")
-            p = params[pname]
             if pname in defaults:
                 p = Param(**{**p.__dict__, "default": defaults[pname]})
             chosen.append(p)
@@ -233,7 +236,7 @@ def _fail(script: Script, p: Param, allowed: str, value: Any) -> ParameterError:
 
 def _convert(script: Script, p: Param, value: Any) -> Any:
     kind = p.kind
-    if kind == "dataset":
+    if kind in ("dataset", "other-dataset"):
         if hasattr(value, "geometry") or isinstance(value, (str, os.PathLike)):
             return value
         raise _fail(script, p, "a path or a GeoDataFrame", value)
@@ -247,7 +250,7 @@ def _convert(script: Script, p: Param, value: Any) -> Any:
         if not isinstance(value, str) or (kind != "text" and not value.strip()):
             raise _fail(script, p, "a non-empty text", value)
         return value
-    if kind == "output-table":
+    if kind in ("output-table", "output-layer"):
         if not isinstance(value, (str, os.PathLike)) or not str(value):
             raise _fail(script, p, "a file path or -", value)
         return os.fspath(value)

@@ -41,21 +41,26 @@ class _ProgressBar:
 
 
 def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
-    data = values.get("data")
-    if isinstance(data, (str, os.PathLike)):
-        return [(os.fspath(data), values.get("layer"))]
-    return []
+    """The (path, layer) pairs a script reads, which its output must never replace."""
+    found = []
+    for data, layer in (("data", "layer"), ("to", "to_layer")):
+        if isinstance(values.get(data), (str, os.PathLike)):
+            found.append((os.fspath(values[data]), values.get(layer)))
+    return found
 
 
 def run_script(script: Script, values: dict[str, Any]) -> tuple[Any, str | None]:
     """Run ``script`` with raw parameter values; returns the result and where it was written."""
     values = validate(script, values)
     runner_params = {p.name for p in script.params if p.runner}
-    output = values.get("output")
+    target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
+    output = values.get(target.name) if target else None
+    what = "layer" if target is not None and target.kind == "output-layer" else "table"
+    where = dict(
+        what=what, layer_name=values.get("output_layer") or "", overwrite=bool(values.get("overwrite"))
+    )
     if output is not None:
-        layers.check_table_output(
-            output, values.get("output_layer") or "", bool(values.get("overwrite")), inputs=_inputs(values)
-        )
+        layers.check_output(output, inputs=_inputs(values), **where)
     function = script.load()
     call = {k: v for k, v in values.items() if k not in runner_params}
     bar = _ProgressBar(script.name, bool(values.get("quiet", True)))
@@ -67,12 +72,7 @@ def run_script(script: Script, values: dict[str, Any]) -> tuple[Any, str | None]
         bar.close()
     written = None
     if output is not None:
-        written = layers.write_table(
-            result,
-            output,
-            layer_name=values.get("output_layer") or "",
-            overwrite=bool(values.get("overwrite")),
-        )
+        written = layers.write_output(result, output, **where)
     return result, written
 
 

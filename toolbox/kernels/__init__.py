@@ -10,7 +10,9 @@ from ._common import (
     projection_error,
     projection_factors,
 )
+from .cross import CrossPairSums, cross_pair_sums
 from .pairs import GroupPairSums, PairSum, exact_pair_sum, grouped_pair_sums, pair_distance_sum
+from .points import PointSums, grouped_point_sums
 
 __all__ = [
     "METHODS",
@@ -22,4 +24,8 @@ __all__ = [
     "exact_pair_sum",
     "pair_distance_sum",
     "grouped_pair_sums",
+    "PointSums",
+    "grouped_point_sums",
+    "CrossPairSums",
+    "cross_pair_sums",
 ]
