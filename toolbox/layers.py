@@ -162,9 +162,8 @@ def read_points(
     except Exception as exc:
         raise _reading_failed(exc, label, where, engine) from exc
     geom_name = meta["geometry_name"] or "wkb_geometry"
-    wkb = table.column(geom_name).to_numpy(zero_copy_only=False)
     attributes = table.drop_columns([geom_name]).to_pandas()
-    return _points_from_wkb(attributes, wkb, meta["crs"], label)
+    return _points_from_wkb(attributes, table.column(geom_name), meta["crs"], label)
 
 
 def read_layer(
@@ -213,20 +212,38 @@ def _check_fields(fields, available, label):
             raise InputError(f"{label} has no field {field!r}; {_suggest(field, available)}")
 
 
-def _points_from_wkb(attributes, wkb, crs, label) -> PointLayer:
-    # Fast path: a layer of 2-D little-endian WKB points is a fixed 21-byte record per feature.
-    if wkb.size and all(v is not None for v in wkb[:1]):
-        lengths = np.fromiter((len(v) if v is not None else -1 for v in wkb), np.int64, wkb.size)
-        if (lengths == 21).all():
-            raw = np.frombuffer(b"".join(wkb), dtype=np.uint8).reshape(-1, 21)
-            if (raw[:, 0] == 1).all() and (raw[:, 1:5].view("<u4")[:, 0] == 1).all():
-                xy = raw[:, 5:].copy().view("<f8")
-                x, y = xy[:, 0].copy(), xy[:, 1].copy()
-                empty = np.isnan(x) & np.isnan(y)  # WKB encodes POINT EMPTY as NaN, NaN
-                if not empty.any():
-                    feature = np.arange(x.size, dtype=np.int64)
-                    return _finish(attributes, x, y, feature, crs, label)
-    geometry = shapely.from_wkb(wkb)
+def _fixed_points(column) -> tuple[np.ndarray, np.ndarray] | None:
+    """Coordinates straight from an Arrow WKB column when every value is a 2-D point.
+
+    A little-endian 2-D WKB point is a fixed 21-byte record (byte order, type 1, x, y), so the
+    column's data buffer can be read as an array without making a Python object per feature.
+    Anything else (nulls, other types, Z/M, big-endian, POINT EMPTY) returns None.
+    """
+    import pyarrow as pa
+
+    column = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
+    if len(column) == 0 or column.null_count or column.type not in (pa.binary(), pa.large_binary()):
+        return None
+    width = "<i4" if column.type == pa.binary() else "<i8"
+    offsets = np.frombuffer(column.buffers()[1], width)[column.offset : column.offset + len(column) + 1]
+    if not (np.diff(offsets) == 21).all():
+        return None
+    raw = np.frombuffer(column.buffers()[2], np.uint8)[offsets[0] : offsets[-1]].reshape(-1, 21)
+    if not ((raw[:, 0] == 1).all() and (raw[:, 1:5].copy().view("<u4")[:, 0] == 1).all()):
+        return None
+    xy = raw[:, 5:].copy().view("<f8")
+    x, y = xy[:, 0].copy(), xy[:, 1].copy()
+    if (np.isnan(x) & np.isnan(y)).any():  # WKB writes POINT EMPTY as (NaN, NaN)
+        return None
+    return x, y
+
+
+def _points_from_wkb(attributes, column, crs, label) -> PointLayer:
+    fixed = _fixed_points(column)
+    if fixed is not None:
+        x, y = fixed
+        return _finish(attributes, x, y, np.arange(x.size, dtype=np.int64), crs, label)
+    geometry = shapely.from_wkb(column.to_numpy(zero_copy_only=False))
     return _points_from_geometry(attributes, geometry, crs, label)
 
 

@@ -123,6 +123,11 @@ def crofton_interval(summed, slack, m):
     return est, lo, hi, np.where(hi > 0, rb, 0.0)
 
 
+def centring_slack(weight_sum, radius_sum):
+    """Absolute allowance for centring: each pair's distance may be off by u·(r_i + r_j)·√2."""
+    return 2 * math.sqrt(2) * UNIT_ROUNDOFF * weight_sum * radius_sum
+
+
 def exact_rounding(n_terms):
     """Relative rounding allowance of a brute-force sum of ``n_terms`` non-negative terms.
 
@@ -184,13 +189,33 @@ def check_groups(groups, n, n_groups):
     return groups.astype(np.int64, copy=False), int(n_groups)
 
 
+def centre(x, y, codes, n_groups, w=None):
+    """Coordinates minus their group's (weighted) mean.
+
+    UTM northings are ~6e6 m, so sums of raw coordinates lose the digits of a 1 m spread.
+    Any float centre near the points will do: subtracting it errs by at most u·r_i, r_i the
+    distance of point i from it, and the kernels' rounding allowances are written in those
+    r_i. The weighted mean keeps far zero-weight points from pulling the centre away from the
+    points that count; a group whose weights are all zero uses the plain mean.
+    """
+    counts = np.bincount(codes, minlength=n_groups).astype(np.float64)
+    if w is None:
+        wsum, wx, wy = counts, np.bincount(codes, x, n_groups), np.bincount(codes, y, n_groups)
+    else:
+        wsum = np.bincount(codes, w, n_groups)
+        wx, wy = np.bincount(codes, w * x, n_groups), np.bincount(codes, w * y, n_groups)
+        plain = ~(wsum > 0)
+        if plain.any():
+            wsum = np.where(plain, counts, wsum)
+            wx = np.where(plain, np.bincount(codes, x, n_groups), wx)
+            wy = np.where(plain, np.bincount(codes, y, n_groups), wy)
+    safe = np.maximum(wsum, np.finfo(np.float64).tiny)
+    return x - (wx / safe)[codes], y - (wy / safe)[codes]
+
+
 @dataclass(frozen=True)
 class GroupLayout:
-    """Points sorted by group, each group centred on itself.
-
-    Centring subtracts a member point first (exact for nearby values, and it keeps digits a
-    mean of 6e6-sized northings would lose), then the mean of the differences.
-    """
+    """Points sorted by group, each group centred on its (weighted) mean (see :func:`centre`)."""
 
     n_groups: int
     order: np.ndarray  # original index of each sorted point
@@ -209,15 +234,8 @@ class GroupLayout:
         codes = groups[order]
         counts = np.bincount(codes, minlength=n_groups).astype(np.int64)
         starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
-        xs, ys = x[order], y[order]
-        if xs.size:
-            first = np.minimum(starts, xs.size - 1)
-            xs = xs - xs[first][codes]
-            ys = ys - ys[first][codes]
-            safe = np.maximum(counts, 1)
-            xs -= (np.bincount(codes, xs, n_groups) / safe)[codes]
-            ys -= (np.bincount(codes, ys, n_groups) / safe)[codes]
         ws = None if weights is None else weights[order]
+        xs, ys = centre(x[order], y[order], codes, n_groups, ws)
         wpt = np.ones(xs.size) if ws is None else ws
         weight_sum = np.bincount(codes, wpt, n_groups)
         return cls(n_groups, order, codes, counts, starts, xs, ys, ws, wpt, weight_sum)

@@ -14,14 +14,14 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse
-from scipy.spatial.distance import cdist
 
 from ._common import (
     BLOCK_ELEMENTS,
     UNIT_ROUNDOFF,
     Progress,
     Ticker,
+    centre,
+    centring_slack,
     check_groups,
     check_method,
     check_points,
@@ -30,7 +30,7 @@ from ._common import (
     directions_unit_vectors,
     exact_rounding,
 )
-from .pairs import _centred, grouped_pair_sums
+from .pairs import grouped_pair_sums
 
 __all__ = ["MAX_CROSS_GROUPS", "CrossPairSums", "cross_pair_sums"]
 
@@ -127,14 +127,20 @@ def cross_pair_sums(
     w = np.ones(x.size) if weights is None else weights
     n = x.size
     use_exact = m == 0 or (method == "auto" and cost_exact(n) <= _cost_cross_projection(n, n_groups, m))
-    cx, cy = _centred(x, y)
+    cx, cy = centre(x, y, np.zeros(n, dtype=np.int64), 1, w)
+    radii = np.hypot(cx, cy)
     tick = Ticker(progress, n if use_exact else m * n)
     if use_exact:
         total = _exact_cross(cx, cy, groups, n_groups, w, tick)
         # every entry sums non-negative terms in three stages (matrix product, rows, blocks)
         rounding = exact_rounding(3 * n)
-        lower, upper = total * (1 - rounding), total * (1 + rounding)
-        rel_bound = np.full(total.shape, rounding)
+        # centring: entry (A, B) may be off by u·√2·Σ w_a w_b (r_a + r_b)
+        wr = np.bincount(groups, w * radii, n_groups)
+        ws = np.bincount(groups, w, n_groups)
+        shift = centring_slack(1.0, 1.0) * (np.outer(wr, ws) + np.outer(ws, wr)) / 2
+        lower, upper = np.maximum(total * (1 - rounding) - shift, 0.0), total * (1 + rounding) + shift
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rel_bound = np.where(total > 0, rounding + shift / total, np.where(shift > 0, np.inf, 0.0))
         directions = 0
     else:
         summed = np.zeros((n_groups, n_groups))
@@ -145,7 +151,7 @@ def cross_pair_sums(
             tick(n)
         weight_sum = np.bincount(groups, w, n_groups)
         blocks = -(-n // beta)
-        radius = float(np.hypot(cx, cy).max()) if n else 0.0
+        radius = float(radii.max()) if n else 0.0
         # Rounding: each ordered half is bounded by 2·R·W_A·W_B and accumulates over at most
         # T + β + 16 terms, so the computed entry is within that many units of roundoff of it.
         slack = m * (blocks + beta + 16) * UNIT_ROUNDOFF * 4 * radius * np.outer(weight_sum, weight_sum)
@@ -215,6 +221,9 @@ def _projected_cross(p, groups, n_groups, w, beta) -> np.ndarray:
 
 def _exact_cross(x, y, groups, n_groups, w, tick) -> np.ndarray:
     """Exact ``Σ_{a∈A, b∈B} w_a w_b d_ab`` for all group pairs, in blocks of rows."""
+    import scipy.sparse
+    from scipy.spatial.distance import cdist  # imported here: a start-up cost only exact sums pay
+
     n = x.size
     pts = np.column_stack([x, y])
     onehot = scipy.sparse.csr_matrix((w, (np.arange(n), groups)), shape=(n, n_groups))

@@ -13,7 +13,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial.distance import cdist
 
 from ._common import (
     BLOCK_ELEMENTS,
@@ -22,6 +21,7 @@ from ._common import (
     GroupLayout,
     Progress,
     Ticker,
+    centring_slack,
     check_groups,
     check_method,
     check_points,
@@ -97,22 +97,14 @@ def exact_pair_sum(x, y, weights=None) -> float:
     >>> exact_pair_sum([0, 3, 0], [0, 0, 4])  # a 3-4-5 triangle
     12.0
     """
-    x, y, weights = check_points(x, y, weights)
-    return float(_exact_one(*_centred(x, y), weights))
-
-
-def _centred(x, y):
-    # Subtracting a point of the set first is exact for nearby values and keeps digits that
-    # a mean of 5e6-sized northings would lose; the mean of the differences then centres it.
-    if x.size == 0:
-        return x, y
-    dx = x - x[0]
-    dy = y - y[0]
-    return dx - dx.mean(), dy - dy.mean()
+    r = grouped_pair_sums(x, y, np.zeros(np.shape(x), dtype=np.int64), 1, weights, tolerance=0)
+    return float(np.nan_to_num(r.total[0]))
 
 
 def _exact_one(x, y, w) -> float:
     """Exact weighted pair sum of one centred group (blocks of rows against the rest)."""
+    from scipy.spatial.distance import cdist  # imported here: a start-up cost only exact sums pay
+
     n = x.size
     if n < 2:
         return 0.0
@@ -201,6 +193,7 @@ def grouped_pair_sums(
     live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
     exact_groups, proj_groups = split_methods(counts, live, m, method, lay.w is not None)
     tick = Ticker(progress, counts[exact_groups].sum() + m * counts[proj_groups].sum())
+    radius_sum = lay.radius_sum()
 
     # exact sums: many small groups at once, larger ones in blocks
     small = exact_groups[counts[exact_groups] <= SMALL_EXACT]
@@ -214,9 +207,12 @@ def grouped_pair_sums(
     # padded batches add all s² terms in one chain; row blocks chain about 3n additions
     sizes = counts[exact_groups]
     rounding = exact_rounding(np.where(sizes <= SMALL_EXACT, sizes * sizes, 3 * sizes))
-    lower[exact_groups] = total[exact_groups] * (1 - rounding)
-    upper[exact_groups] = total[exact_groups] * (1 + rounding)
-    rel_bound[exact_groups] = rounding
+    g = exact_groups
+    shift = centring_slack(lay.weight_sum[g], radius_sum[g])
+    lower[g] = np.maximum(total[g] * (1 - rounding) - shift, 0.0)
+    upper[g] = total[g] * (1 + rounding) + shift
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel_bound[g] = np.where(total[g] > 0, rounding + shift / total[g], np.where(shift > 0, np.inf, 0.0))
     exact[exact_groups] = True
 
     if proj_groups.size:
@@ -229,8 +225,9 @@ def grouped_pair_sums(
             )
             tick(m * counts[chunk].sum())
         # Rounding: |c_i| ≤ w_i W_g and |p_i| ≤ r_i, so each direction's computed sum is within
-        # (4 n_g + 2)·u·W_g·Σ w_i r_i of the exact projected sum (local cumulative sums only).
-        slack = m * (4 * counts + 2) * UNIT_ROUNDOFF * lay.weight_sum * lay.radius_sum()
+        # (4 n_g + 6)·u·W_g·Σ w_i r_i of the exact projected sum of the exact coordinates
+        # (local cumulative sums only; centring included).
+        slack = m * (4 * counts + 6) * UNIT_ROUNDOFF * lay.weight_sum * radius_sum
         g = proj_groups
         total[g], lower[g], upper[g], rel_bound[g] = crofton_interval(summed[g], slack[g], m)
         dirs[g] = m

@@ -12,7 +12,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.spatial.distance import cdist
 
 from ._common import (
     BLOCK_ELEMENTS,
@@ -21,6 +20,7 @@ from ._common import (
     GroupLayout,
     Progress,
     Ticker,
+    centring_slack,
     check_groups,
     check_method,
     check_points,
@@ -116,6 +116,8 @@ def grouped_point_sums(
     live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
     exact_groups, proj_groups = split_methods(counts, live, m, method, lay.w is not None)
     tick = Ticker(progress, counts[exact_groups].sum() + m * counts[proj_groups].sum())
+    radius = np.hypot(lay.x, lay.y)
+    radius_sum = lay.radius_sum()
 
     # results are filled in group-sorted order, then put back in input order at the end
     small = exact_groups[counts[exact_groups] <= SMALL_EXACT]
@@ -129,10 +131,15 @@ def grouped_point_sums(
         total[sl] = _exact_rows(lay.x[sl], lay.y[sl], lay.wpt[sl])
         tick(counts[g])
     in_exact = np.isin(lay.codes, exact_groups)
-    rounding = exact_rounding(2 * counts[lay.codes[in_exact]])  # one row of n terms, plus cdist
-    lower[in_exact] = total[in_exact] * (1 - rounding)
-    upper[in_exact] = total[in_exact] * (1 + rounding)
-    rel_bound[in_exact] = rounding
+    codes = lay.codes[in_exact]
+    rounding = exact_rounding(2 * counts[codes])  # one row of n terms, plus cdist
+    # centring: Σ_j w_j d_ij may be off by u·√2·(W r_i + Σ_j w_j r_j)
+    shift = centring_slack(1.0, 1.0) * (lay.weight_sum[codes] * radius[in_exact] + radius_sum[codes]) / 2
+    t = total[in_exact]
+    lower[in_exact] = np.maximum(t * (1 - rounding) - shift, 0.0)
+    upper[in_exact] = t * (1 + rounding) + shift
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel_bound[in_exact] = np.where(t > 0, rounding + shift / t, np.where(shift > 0, np.inf, 0.0))
     exact[in_exact] = True
 
     if proj_groups.size:
@@ -145,15 +152,15 @@ def grouped_point_sums(
             summed[index[valid]] = rows[valid]
             tick(m * counts[chunk].sum())
         # Rounding: the prefix sums of one group are bounded by W_g·r_i and A_g = Σ w_j r_j, so
-        # each direction's computed sum is within (4 n_g + 6)·u·(W_g r_i + A_g) of the exact one.
+        # each direction's computed sum is within (4 n_g + 6)·u·(W_g r_i + A_g) of the exact one
+        # (centring included).
         in_proj = np.isin(lay.codes, proj_groups)
         codes = lay.codes[in_proj]
-        radius = np.hypot(lay.x[in_proj], lay.y[in_proj])
         slack = (
             m
             * (4 * counts[codes] + 6)
             * UNIT_ROUNDOFF
-            * (lay.weight_sum[codes] * radius + lay.radius_sum()[codes])
+            * (lay.weight_sum[codes] * radius[in_proj] + radius_sum[codes])
         )
         total[in_proj], lower[in_proj], upper[in_proj], rel_bound[in_proj] = crofton_interval(
             summed[in_proj], slack, m
@@ -183,6 +190,8 @@ def grouped_point_sums(
 
 def _exact_rows(x, y, w) -> np.ndarray:
     """``Σ_j w_j d_ij`` for every point of one centred group, in blocks of rows."""
+    from scipy.spatial.distance import cdist  # imported here: a start-up cost only exact sums pay
+
     pts = np.column_stack([x, y])
     n = x.size
     block = max(1, min(n, BLOCK_ELEMENTS // n))
