@@ -15,7 +15,7 @@ import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["Grouping", "group_features", "feature_weights", "planar_units"]
+__all__ = ["Grouping", "group_features", "feature_weights", "planar_units", "group_namer"]
 
 
 @dataclass(frozen=True)
@@ -43,6 +43,19 @@ def group_features(attributes: pd.DataFrame, fields: Sequence[str]) -> Grouping:
     codes = grouped.ngroup().to_numpy(dtype=np.int64)
     keys = grouped.size().reset_index()[list(fields)]
     return Grouping(codes, keys.reset_index(drop=True))
+
+
+def group_namer(keys: pd.DataFrame):
+    """A function naming group ``code`` for messages, e.g. ``group (zone='harbour')``."""
+
+    def name(code: int) -> str:
+        if keys.shape[1] == 0:
+            return "the whole layer"
+        row = keys.iloc[int(code)]
+        values = ", ".join(f"{field}={None if pd.isna(v) else v!r}" for field, v in row.items())
+        return f"group ({values})"
+
+    return name
 
 
 def feature_weights(attributes: pd.DataFrame, field: str | None, label: str) -> np.ndarray | None:
@@ -79,6 +92,8 @@ def planar_units(crs, label: str) -> str:
     """Name of the linear unit of a projected CRS; refuses geographic ones.
 
     A missing CRS is allowed with a warning: distances are then in the layer's own units.
+    Which distance a layer gets (planar, geodesic, or planar after --crs) is decided first by
+    :func:`toolbox.geodesy.distance_setup`; this is its planar branch.
     """
     if crs is None:
         warnings.warn(
@@ -91,8 +106,8 @@ def planar_units(crs, label: str) -> str:
     if crs.is_geographic:
         raise InputError(
             f"{label} is in a geographic CRS ({crs.name}), so its coordinates are degrees and planar "
-            "distances would be wrong; reproject it to a projected CRS in metres first (for "
-            "example a UTM zone or a national grid) and run again."
+            "distances would be wrong; use geodesic distances (the default for such layers) or "
+            "reproject it with --crs to a projected CRS in metres (a UTM zone or a national grid)."
         )
     axes = crs.axis_info
     return axes[0].unit_name if axes else "unknown"

@@ -274,7 +274,7 @@ def exact_geodesic_point_sums(
     Examples
     --------
     >>> r = exact_geodesic_point_sums([0, 0, 90], [0, 90, 0], [0, 0, 0])
-    >>> [round(v / 1e3, 3) for v in r.total]  # two quadrants each (meridian, equator)
+    >>> [round(float(v) / 1e3, 3) for v in r.total]  # two quadrants each (meridian, equator)
     [20020.72, 20003.931, 20020.72]
     """
     lon, lat, weights = check_lonlat(lon, lat, weights)

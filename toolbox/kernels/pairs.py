@@ -57,7 +57,7 @@ class GroupPairSums:
     """Per-group results of :func:`grouped_pair_sums`; every array has one entry per group.
 
     Groups with fewer than two points or zero pair weight have NaN totals and bounds,
-    ``method`` code -1 and 0 directions.
+    ``exact`` False and 0 directions.
     """
 
     n_points: np.ndarray

@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pandas as pd
 
-from .. import grouping, kernels, layers
+from .. import geodesy, grouping, kernels, layers
 from ..errors import InputError, ParameterError
 
 
@@ -43,6 +41,8 @@ def cross_spread(
     to_weight=None,
     tolerance=0.01,
     method="auto",
+    distance=None,
+    crs=None,
     where=None,
     engine="pyogrio",
     wide=False,
@@ -59,12 +59,16 @@ def cross_spread(
         if to_layer or to_group_by or to_weight:
             raise ParameterError("--to-layer, --to-group-by and --to-weight need --to.")
     first, first_groups, first_w = _read(data, layer, group_by, weight, where, engine)
-    units = grouping.planar_units(first.crs, first.label)
-    x, y, codes, w = first.x, first.y, first_groups.codes[first.feature], first_w
+    setup = geodesy.distance_setup(
+        first.crs, first.label, distance=distance, target=crs, script="cross-spread"
+    )
+    units = setup.units
+    x, y = setup.coordinates(first.x, first.y, first.crs, first.label)
+    codes, w = first_groups.codes[first.feature], first_w
     n_from = first_groups.count
     if to is not None:
         second, second_groups, second_w = _read(to, to_layer, to_group_by, to_weight, None, engine)
-        sx, sy = _to_crs(second, first)
+        sx, sy = _to_crs(second, first, setup, explicit=crs is not None)
         x, y = np.concatenate([x, sx]), np.concatenate([y, sy])
         codes = np.concatenate([codes, n_from + second_groups.codes[second.feature]])
         w = np.concatenate([w, second_w])
@@ -73,9 +77,15 @@ def cross_spread(
     else:
         n_groups = n_from
         from_keys = to_keys = first_groups.keys
-    sums = kernels.cross_pair_sums(
-        x, y, codes, n_groups, w, tolerance=tolerance, method=method, progress=progress
-    )
+    if setup.kind == "geodesic":
+        sums = geodesy.geodesic_cross_pair_sums(
+            x, y, codes, n_groups, w, a=setup.a, f=setup.f, tolerance=tolerance, method=method,
+            progress=progress,
+        )
+    else:
+        sums = kernels.cross_pair_sums(
+            x, y, codes, n_groups, w, tolerance=tolerance, method=method, progress=progress
+        )
     rows = np.arange(n_from)
     cols = np.arange(n_from, n_groups) if to is not None else rows
     a, b = np.meshgrid(rows, cols, indexing="ij")
@@ -110,8 +120,13 @@ def cross_spread(
     return matrix.rename_axis("from_group").reset_index()
 
 
-def _to_crs(second, first):
-    """Coordinates of the second layer in the first layer's CRS (reprojected if they differ)."""
+def _to_crs(second, first, setup, *, explicit):
+    """Coordinates of the second layer in the frame the first layer's are computed in.
+
+    That is the first layer's CRS (planar; reprojected with a warning if they differ), its
+    longitude and latitude (geodesic), or the CRS of --crs (``explicit``; no warning, since the
+    user asked for it).
+    """
     if first.crs is None and second.crs is None:
         return second.x, second.y
     if first.crs is None or second.crs is None:
@@ -119,17 +134,4 @@ def _to_crs(second, first):
             f"Only one of {first.label} and {second.label} has a CRS, so their coordinates cannot "
             "be related; assign the missing CRS first."
         )
-    grouping.planar_units(second.crs, second.label)
-    if first.crs == second.crs:
-        return second.x, second.y
-    import pyproj
-
-    transformer = pyproj.Transformer.from_crs(second.crs, first.crs, always_xy=True)
-    x, y = transformer.transform(second.x, second.y)
-    warnings.warn(
-        f"{second.label} was reprojected from {second.crs.name} to {first.crs.name} (the first "
-        "layer's CRS) before computing distances.",
-        UserWarning,
-        stacklevel=3,
-    )
-    return np.asarray(x), np.asarray(y)
+    return setup.coordinates(second.x, second.y, second.crs, second.label, note=not explicit)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .. import grouping, kernels, layers
+from .. import geodesy, grouping, kernels, layers
 
 
 def group_spread(
@@ -16,6 +16,8 @@ def group_spread(
     weight=None,
     tolerance=0.01,
     method="auto",
+    distance=None,
+    crs=None,
     where=None,
     engine="pyogrio",
     progress=None,
@@ -25,19 +27,31 @@ def group_spread(
     points = layers.read_points(
         data, layer=layer, fields=[*group_by, *([weight] if weight else [])], where=where, engine=engine
     )
-    units = grouping.planar_units(points.crs, points.label)
+    setup = geodesy.distance_setup(
+        points.crs, points.label, distance=distance, target=crs, script="group-spread"
+    )
     groups = grouping.group_features(points.attributes, group_by)
     weights = grouping.feature_weights(points.attributes, weight, points.label)
-    sums = kernels.grouped_pair_sums(
-        points.x,
-        points.y,
+    x, y = setup.coordinates(points.x, points.y, points.crs, points.label)
+    args = (
+        x,
+        y,
         groups.codes[points.feature],
         groups.count,
         None if weights is None else weights[points.feature],
-        tolerance=tolerance,
-        method=method,
-        progress=progress,
     )
+    if setup.kind == "geodesic":
+        sums = geodesy.grouped_geodesic_pair_sums(
+            *args,
+            a=setup.a,
+            f=setup.f,
+            tolerance=tolerance,
+            method=method,
+            progress=progress,
+            label_of=grouping.group_namer(groups.keys),
+        )
+    else:
+        sums = kernels.grouped_pair_sums(*args, tolerance=tolerance, method=method, progress=progress)
     has_pairs = ~np.isnan(sums.total)
     table = groups.keys.copy()
     table["n_points"] = sums.n_points
@@ -52,5 +66,5 @@ def group_spread(
         np.where(has_pairs, np.where(sums.exact, "exact", "projection"), None), dtype="string"
     )
     table["directions"] = sums.directions
-    table["units"] = units
+    table["units"] = setup.units
     return table

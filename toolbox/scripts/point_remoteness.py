@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .. import grouping, kernels, layers
+from .. import geodesy, grouping, kernels, layers
 from ..errors import GeometryError, InputError
 
 #: new fields, at most 10 characters so that they survive a Shapefile
@@ -19,6 +19,8 @@ def point_remoteness(
     weight=None,
     tolerance=0.01,
     method="auto",
+    distance=None,
+    crs=None,
     where=None,
     engine="pyogrio",
     progress=None,
@@ -39,20 +41,26 @@ def point_remoteness(
             f"{int((parts > 1).sum())} MultiPoint feature(s) of {label} have several points, so "
             "they have no single distance to the rest; split them into single points first."
         )
-    grouping.planar_units(points.crs, points.label)  # refuses degrees; warns without a CRS
+    setup = geodesy.distance_setup(
+        points.crs, points.label, distance=distance, target=crs, script="point-remoteness"
+    )
     groups = grouping.group_features(points.attributes, group_by)
     weights = grouping.feature_weights(points.attributes, weight, points.label)
     codes = groups.codes[points.feature]
-    sums = kernels.grouped_point_sums(
-        points.x,
-        points.y,
-        codes,
-        groups.count,
-        None if weights is None else weights[points.feature],
-        tolerance=tolerance,
-        method=method,
-        progress=progress,
-    )
+    x, y = setup.coordinates(points.x, points.y, points.crs, points.label)
+    args = (x, y, codes, groups.count, None if weights is None else weights[points.feature])
+    if setup.kind == "geodesic":
+        sums = geodesy.grouped_geodesic_point_sums(
+            *args,
+            a=setup.a,
+            f=setup.f,
+            tolerance=tolerance,
+            method=method,
+            progress=progress,
+            label_of=grouping.group_namer(groups.keys),
+        )
+    else:
+        sums = kernels.grouped_point_sums(*args, tolerance=tolerance, method=method, progress=progress)
     # the group's weighted mean pair distance from the same sums: Σ_i w_i R_i = 2·D_g
     w = np.ones(points.x.size) if weights is None else weights[points.feature]
     with np.errstate(invalid="ignore", divide="ignore"):
