@@ -11,7 +11,7 @@ from __future__ import annotations
 import inspect
 from typing import Any
 
-from .manifest import Script, get_script
+from .manifest import Script, get_script, validate
 from .runner import run_script
 
 __all__ = ["script_function"]
@@ -51,7 +51,11 @@ def script_function(name: str):
     signature = inspect.Signature(params)
 
     def function(*args: Any, **kwargs: Any):
-        bound = signature.bind(*args, **kwargs)
+        try:
+            bound = signature.bind(*args, **kwargs)
+        except TypeError:
+            validate(script, kwargs)  # names the unknown parameter and suggests close ones
+            raise
         bound.apply_defaults()
         result, _ = run_script(script, dict(bound.arguments))
         return result

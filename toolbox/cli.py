@@ -24,7 +24,7 @@ __all__ = ["main", "build_parser"]
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # one line, not a usage dump
-        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+        self.exit(2, f"pairspread: error: {message} (see {self.prog} --help)\n")
 
 
 def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
@@ -91,57 +91,69 @@ def _print_table(table) -> None:
     for column in shown.columns:  # a null group key reads as empty, as in the CSV output
         if not pd.api.types.is_numeric_dtype(shown[column]):
             shown[column] = shown[column].astype(object).where(shown[column].notna(), "")
+    if shown.empty:  # the header alone, not pandas' "Empty DataFrame" text
+        print("  ".join(str(c) for c in shown.columns))
+        return
     with pd.option_context("display.max_rows", 200, "display.width", 200, "display.max_columns", 50):
         print(shown.to_string(index=False, float_format=lambda v: f"{v:.6g}"))
+
+
+def _run(argv: list[str]) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    if args.command == "list":
+        for script in scripts().values():
+            print(f"{script.name:<20} {script.summary}")
+        return 0
+    if args.command == "describe":
+        script = get_script(args.script)
+        print(json.dumps(script.describe(), indent=2) if args.json else _describe_text(script))
+        return 0
+    script = get_script(args.command)
+    values = {p.name: getattr(args, p.name) for p in script.params}
+    values = {k: v for k, v in values.items() if v is not None}
+    result, written = run_script(script, values)
+    if written is None:
+        _print_table(result)
+    elif written != "standard output" and not values.get("quiet"):
+        print(f"pairspread: wrote {len(result)} row(s) to {written}", file=sys.stderr)
+    return 0
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the console script and of ``python -m toolbox``."""
     argv = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in argv
-    try:
-        parser = build_parser()
-        args = parser.parse_args(argv)
-        if args.command is None:
-            parser.print_help()
-            return 0
-        if args.command == "list":
-            for script in scripts().values():
-                print(f"{script.name:<20} {script.summary}")
-            return 0
-        if args.command == "describe":
-            script = get_script(args.script)
-            print(json.dumps(script.describe(), indent=2) if args.json else _describe_text(script))
-            return 0
-        script = get_script(args.command)
-        values = {p.name: getattr(args, p.name) for p in script.params}
-        values = {k: v for k, v in values.items() if v is not None}
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", UserWarning)
-            result, written = run_script(script, values)
-        for w in caught:
-            print(f"pairspread: warning: {w.message}", file=sys.stderr)
-        if written is None:
-            _print_table(result)
-        elif written != "standard output" and not values.get("quiet"):
-            print(f"pairspread: wrote {len(result)} row(s) to {written}", file=sys.stderr)
-        return 0
-    except PairspreadError as exc:
-        if debug:
-            raise
-        print(f"pairspread: error: {exc}", file=sys.stderr)
-        return exc.exit_code
-    except KeyboardInterrupt:
-        print("pairspread: interrupted; no output was written.", file=sys.stderr)
-        return 130
-    except BrokenPipeError:
-        return 141
-    except Exception as exc:  # a bug or an unforeseen library failure: still one line
-        if debug:
-            raise
-        print(
-            f"pairspread: error: unexpected {type(exc).__name__}: {exc} (run again with --debug "
-            "for the traceback and please report it)",
-            file=sys.stderr,
-        )
-        return 1
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            return _run(argv)
+        except PairspreadError as exc:
+            if debug:
+                raise
+            print(f"pairspread: error: {exc}", file=sys.stderr)
+            return exc.exit_code
+        except KeyboardInterrupt:
+            print("pairspread: interrupted; no output was written.", file=sys.stderr)
+            return 130
+        except BrokenPipeError:
+            return 141
+        except Exception as exc:  # a bug or an unforeseen library failure: still one line
+            if debug:
+                raise
+            print(
+                f"pairspread: error: unexpected {type(exc).__name__}: {exc} (run again with --debug "
+                "for the traceback and please report it)",
+                file=sys.stderr,
+            )
+            return 1
+        finally:
+            shown = set()
+            for w in caught:  # once each, in our own format, after the run
+                text = str(w.message)
+                if issubclass(w.category, UserWarning) and text not in shown:
+                    shown.add(text)
+                    print(f"pairspread: warning: {text}", file=sys.stderr)

@@ -12,6 +12,7 @@ import os
 import shutil
 import sys
 import tempfile
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -117,6 +118,11 @@ def _open(data, layer, engine, where):
     return path, name, label, [str(f) for f in info["fields"]]
 
 
+def _warn_if_nothing_matched(rows: int, where, label):
+    if where and rows == 0:
+        warnings.warn(f"No feature of {label} matched the --where filter {where!r}.", UserWarning, stacklevel=3)
+
+
 def _reading_failed(exc, label, where, engine):
     if isinstance(exc, ImportError):
         return InputError(f"The {engine} engine is not installed: {exc}")
@@ -158,11 +164,13 @@ def read_points(
     path, name, label, available = _open(data, layer, engine, where)
     _check_fields(fields, available, label)
     try:
-        meta, table = pyogrio.read_arrow(path, layer=name, columns=fields, where=where)
+        # a filter may name fields that are not read; some drivers then drop every row
+        meta, table = pyogrio.read_arrow(path, layer=name, columns=None if where else fields, where=where)
     except Exception as exc:
         raise _reading_failed(exc, label, where, engine) from exc
     geom_name = meta["geometry_name"] or "wkb_geometry"
-    attributes = table.drop_columns([geom_name]).to_pandas()
+    _warn_if_nothing_matched(table.num_rows, where, label)
+    attributes = table.select(fields).to_pandas()
     return _points_from_wkb(attributes, table.column(geom_name), meta["crs"], label)
 
 
@@ -189,11 +197,16 @@ def read_layer(
         _check_fields(columns, available, label)
     try:
         if engine == "pyogrio":
-            frame = pyogrio.read_dataframe(path, layer=name, where=where, columns=columns, use_arrow=True)
-        else:
-            frame = geopandas.read_file(path, layer=name, where=where, columns=columns, engine="fiona")
+            # a filter may name fields that are not read; some drivers then drop every row
+            subset = None if where else columns
+            frame = pyogrio.read_dataframe(path, layer=name, where=where, columns=subset, use_arrow=True)
+        else:  # some fiona drivers cannot skip fields: read them all, keep the named ones after
+            frame = geopandas.read_file(path, layer=name, where=where, engine="fiona")
     except Exception as exc:
         raise _reading_failed(exc, label, where, engine) from exc
+    _warn_if_nothing_matched(len(frame), where, label)
+    if columns is not None:
+        frame = frame[[*columns, frame.geometry.name]]
     return frame, label
 
 
@@ -390,8 +403,8 @@ def check_output(
         if not layer_name:
             raise ParameterError("The output layer name must not be empty.")
         if target.exists():
-            names = _gpkg_layers(target)
-            if layer_name in names and not overwrite:
+            names = [n.lower() for n in _gpkg_layers(target)]  # GeoPackage names ignore case
+            if layer_name.lower() in names and not overwrite:
                 raise OutputError(
                     f"{path!r} already has a layer {layer_name!r}; pass --overwrite to replace it "
                     "or choose another --output-layer."

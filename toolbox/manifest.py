@@ -206,7 +206,12 @@ def scripts() -> dict[str, Script]:
         except (ModuleNotFoundError, FileNotFoundError) as exc:
             warnings.warn(f"Skipping the {where}: {exc}", stacklevel=2)
             continue
-        for script in parse_manifest(text, where=where, package=package, shared=shared):
+        try:
+            parsed = parse_manifest(text, where=where, package=package, shared=shared)
+        except ManifestError as exc:  # one broken pack must not take the others down
+            warnings.warn(f"Skipping the {where}: {exc}", stacklevel=2)
+            continue
+        for script in parsed:
             if script.name in found:
                 warnings.warn(
                     f"Skipping script {script.name!r} of the {where}: the name is already taken.",

@@ -100,6 +100,7 @@ def run(name: str, /, **params: Any) -> Any:
     [12.0]
     """
     script = get_script(name)
-    params.setdefault("quiet", True)
+    if "quiet" in script.param_map:  # no progress bar from Python unless asked for
+        params.setdefault("quiet", True)
     result, _ = run_script(script, params)
     return result
