@@ -115,7 +115,7 @@ def _run(argv: list[str]) -> int:
     script = get_script(args.command)
     values = {p.name: getattr(args, p.name) for p in script.params}
     values = {k: v for k, v in values.items() if v is not None}
-    result, written = run_script(script, values)
+    result, written = run_script(script, values, cli=True)
     if written is None:
         _print_table(result)
     elif written != "standard output" and not values.get("quiet"):

@@ -51,6 +51,7 @@ class Param:
     help: str
     default: Any = None
     required: bool = False
+    cli_required: bool = False  # needed on the command line only (Python can return the result)
     runner: bool = False
     min: float | None = None
     max: float | None = None
@@ -66,7 +67,7 @@ class Param:
         out: dict[str, Any] = {"name": self.name, "kind": self.kind, "help": self.help}
         out["option"] = None if self.kind == "dataset" else self.option
         out["default"] = self.default
-        out["required"] = self.required or self.kind == "dataset"
+        out["required"] = self.required or self.cli_required or self.kind == "dataset"
         if self.min is not None or self.max is not None:
             out["range"] = [self.min, self.max]
         if self.choices:
@@ -122,7 +123,8 @@ def _param(name: str, spec: Mapping[str, Any], where: str) -> Param:
         raise ManifestError(f"{where}: parameter {name!r} needs a help text.")
     if kind == "choice" and not spec.get("choices"):
         raise ManifestError(f"{where}: choice parameter {name!r} needs choices.")
-    unknown = set(spec) - {"kind", "help", "default", "required", "runner", "min", "max", "choices"}
+    known = {"kind", "help", "default", "required", "cli_required", "runner", "min", "max", "choices"}
+    unknown = set(spec) - known
     if unknown:
         raise ManifestError(f"{where}: parameter {name!r} has unknown keys {sorted(unknown)}.")
     return Param(
@@ -131,6 +133,7 @@ def _param(name: str, spec: Mapping[str, Any], where: str) -> Param:
         help=spec["help"],
         default=spec.get("default"),
         required=bool(spec.get("required", False)),
+        cli_required=bool(spec.get("cli_required", False)),
         runner=bool(spec.get("runner", False)),
         min=spec.get("min"),
         max=spec.get("max"),
@@ -290,7 +293,7 @@ def _range(p: Param) -> str:
     return ""
 
 
-def validate(script: Script, values: Mapping[str, Any]) -> dict[str, Any]:
+def validate(script: Script, values: Mapping[str, Any], *, cli: bool = False) -> dict[str, Any]:
     """Check and normalise parameter values; missing ones take their declared defaults.
 
     The one validator of the pack: the CLI and the Python API both go through it, so every
@@ -306,7 +309,7 @@ def validate(script: Script, values: Mapping[str, Any]) -> dict[str, Any]:
     for p in script.params:
         value = values.get(p.name)
         if value is None:
-            if p.required or p.kind == "dataset":
+            if p.required or p.kind == "dataset" or (cli and p.cli_required):
                 raise ParameterError(
                     f"{script.name} needs {'INPUT' if p.kind == 'dataset' else p.option}: {p.help}"
                 )

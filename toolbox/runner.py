@@ -49,9 +49,9 @@ def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
     return found
 
 
-def run_script(script: Script, values: dict[str, Any]) -> tuple[Any, str | None]:
+def run_script(script: Script, values: dict[str, Any], *, cli: bool = False) -> tuple[Any, str | None]:
     """Run ``script`` with raw parameter values; returns the result and where it was written."""
-    values = validate(script, values)
+    values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
     target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
     output = values.get(target.name) if target else None

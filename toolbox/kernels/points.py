@@ -112,8 +112,8 @@ def grouped_point_sums(
     exact = np.zeros(n, dtype=bool)
     dirs = np.zeros(n, dtype=np.int64)
 
-    pair_weight = np.bincount(lay.codes, lay.wpt * other, n_groups)
-    live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
+    # a zero-weight point beside one weighted point still has a distance to it
+    live = np.flatnonzero((counts >= 2) & (lay.weight_sum > 0))
     exact_groups, proj_groups = split_methods(counts, live, m, method, lay.w is not None)
     tick = Ticker(progress, counts[exact_groups].sum() + m * counts[proj_groups].sum())
     radius = np.hypot(lay.x, lay.y)
