@@ -25,15 +25,30 @@ MAX_BUCKETS = 1 << 16
 
 @njit(cache=True, nogil=True)
 def _sorted_pair_sum(p, w):
-    """Exact Σ_{i<j} w_i w_j |p_i − p_j| of a small set, by sorting."""
-    order = np.argsort(p)
+    """Exact Σ_{i<j} w_i w_j |p_i − p_j| of a small set, sorting it in place.
+
+    Buckets are small: insertion sort needs no allocation, which matters when a task resolves
+    thousands of them; larger sets are sorted with an index sort.
+    """
+    n = p.size
+    if n > 32:
+        order = np.argsort(p)
+        p[:] = p[order]
+        w[:] = w[order]
+    else:
+        for i in range(1, n):
+            pi, wi = p[i], w[i]
+            j = i - 1
+            while j >= 0 and p[j] > pi:
+                p[j + 1], w[j + 1] = p[j], w[j]
+                j -= 1
+            p[j + 1], w[j + 1] = pi, wi
     total_w = 0.0
-    for i in range(w.size):
+    for i in range(n):
         total_w += w[i]
     before = 0.0
     out = 0.0
-    for k in range(order.size):
-        i = order[k]
+    for i in range(n):
         out += w[i] * p[i] * (2.0 * before + w[i] - total_w)
         before += w[i]
     return out
@@ -45,7 +60,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
     if n < 2 or radius <= 0.0:
         return 0.0, 0.0
     buckets = 16
-    while buckets < 4 * n and buckets < MAX_BUCKETS:  # small groups: mostly one point per bucket
+    while buckets < 2 * n and buckets < MAX_BUCKETS:  # mostly one point or none per bucket
         buckets *= 2
     scale = buckets / (2.0 * radius)
     wb = np.zeros(buckets)
@@ -90,15 +105,17 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
     if uncertain == 0.0 or (not cheap and uncertain <= budget * exact):
         return exact, uncertain
     # resolve buckets exactly, heaviest first, until the rest fits the budget (all, if cheap)
-    chosen = np.zeros(buckets, dtype=np.bool_)
-    heavy = np.argsort(-spread)
-    k = 0
-    while k < buckets and spread[heavy[k]] > 0.0 and (cheap or uncertain > budget * exact):
-        chosen[heavy[k]] = True
-        uncertain -= spread[heavy[k]]
-        k += 1
     if cheap:
+        chosen = spread > 0.0
         uncertain = 0.0
+    else:
+        chosen = np.zeros(buckets, dtype=np.bool_)
+        heavy = np.argsort(-spread)
+        k = 0
+        while k < buckets and spread[heavy[k]] > 0.0 and uncertain > budget * exact:
+            chosen[heavy[k]] = True
+            uncertain -= spread[heavy[k]]
+            k += 1
     offsets = np.zeros(buckets + 1, dtype=np.int64)
     for b in range(buckets):
         offsets[b + 1] = offsets[b] + (count[b] if chosen[b] else 0)

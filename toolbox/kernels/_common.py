@@ -186,7 +186,7 @@ def check_groups(groups, n, n_groups):
         n_groups = int(groups.max()) + 1 if groups.size else 0
     if groups.size and (groups.min() < 0 or groups.max() >= n_groups):
         raise ParameterError(f"group codes must lie in [0, {n_groups}).")
-    return groups.astype(np.int64, copy=False), int(n_groups)
+    return groups if groups.dtype.kind in "iu" else groups.astype(np.int64), int(n_groups)
 
 
 def centre(x, y, codes, n_groups, w=None):
@@ -198,6 +198,9 @@ def centre(x, y, codes, n_groups, w=None):
     r_i. The weighted mean keeps far zero-weight points from pulling the centre away from the
     points that count; a group whose weights are all zero uses the plain mean.
     """
+    if n_groups == 1:  # one group: subtract scalars, no per-point temporaries
+        weights = w if w is not None and w.sum() > 0 else None
+        return x - np.average(x, weights=weights), y - np.average(y, weights=weights)
     counts = np.bincount(codes, minlength=n_groups).astype(np.float64)
     if w is None:
         wsum, wx, wy = counts, np.bincount(codes, x, n_groups), np.bincount(codes, y, n_groups)
@@ -218,7 +221,7 @@ class GroupLayout:
     """Points sorted by group, each group centred on its (weighted) mean (see :func:`centre`)."""
 
     n_groups: int
-    order: np.ndarray  # original index of each sorted point
+    order: np.ndarray | None  # original index of each sorted point; None: already in order
     codes: np.ndarray  # group of each sorted point
     counts: np.ndarray
     starts: np.ndarray
@@ -230,15 +233,45 @@ class GroupLayout:
 
     @classmethod
     def build(cls, x, y, groups, n_groups, weights) -> GroupLayout:
-        order = np.argsort(groups, kind="stable")
-        codes = groups[order]
-        counts = np.bincount(codes, minlength=n_groups).astype(np.int64)
+        # points already in group order (one group, say) are not copied into a new order
+        ordered = n_groups == 1 or bool(np.all(groups[1:] >= groups[:-1]))
+        order = None
+        if not ordered:
+            # a stable sort of 16-bit codes is a radix sort in numpy: linear time
+            small = groups.astype(np.int16) if n_groups <= np.iinfo(np.int16).max else groups
+            order = np.argsort(small, kind="stable")
+            groups, x, y = groups[order], x[order], y[order]
+            weights = None if weights is None else weights[order]
+        counts = np.bincount(groups, minlength=n_groups).astype(np.int64)
         starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
-        ws = None if weights is None else weights[order]
-        xs, ys = centre(x[order], y[order], codes, n_groups, ws)
-        wpt = np.ones(xs.size) if ws is None else ws
-        weight_sum = np.bincount(codes, wpt, n_groups)
-        return cls(n_groups, order, codes, counts, starts, xs, ys, ws, wpt, weight_sum)
+        xs, ys = centre(x, y, groups, n_groups, weights)
+        # unweighted: a read-only view of ones, not an array of them
+        wpt = np.broadcast_to(1.0, xs.shape) if weights is None else weights
+        weight_sum = counts.astype(np.float64) if weights is None else np.bincount(groups, weights, n_groups)
+        return cls(n_groups, order, groups, counts, starts, xs, ys, weights, wpt, weight_sum)
+
+    def unsort(self, values: np.ndarray) -> np.ndarray:
+        """Per-point values in group order put back in input order."""
+        if self.order is None:
+            return values
+        out = np.empty_like(values)
+        out[self.order] = values
+        return out
+
+    def pair_weight(self) -> np.ndarray:
+        """Σ_{i<j} w_i w_j per group."""
+        if self.w is None:
+            return self.counts * (self.counts - 1) / 2.0
+        own = np.bincount(self.codes, self.w * self.w, self.n_groups)
+        return np.maximum(0.5 * (self.weight_sum**2 - own), 0.0)
+
+    def radius_max(self) -> np.ndarray:
+        """Largest distance of a point from its group's centre, per group (0 when empty)."""
+        out = np.zeros(self.n_groups)
+        filled = self.counts > 0
+        if filled.any():
+            out[filled] = np.maximum.reduceat(np.hypot(self.x, self.y), self.starts[filled])
+        return out
 
     def padded(self, groups):
         """Index matrix (groups, s) into the sorted arrays, plus its validity mask."""
@@ -272,7 +305,12 @@ class GroupLayout:
 
     def radius_sum(self):
         """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
-        return np.bincount(self.codes, self.wpt * np.hypot(self.x, self.y), self.n_groups)
+        radius = np.hypot(self.x, self.y)
+        if self.w is not None:
+            radius *= self.w
+        if self.n_groups == 1:
+            return np.array([radius.sum()])
+        return np.bincount(self.codes, radius, self.n_groups)
 
 
 def cost_exact(n):

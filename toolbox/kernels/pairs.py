@@ -106,7 +106,7 @@ def exact_pair_sum(x, y, weights=None) -> float:
     >>> exact_pair_sum([0, 3, 0], [0, 0, 4])  # a 3-4-5 triangle
     12.0
     """
-    r = grouped_pair_sums(x, y, np.zeros(np.shape(x), dtype=np.int64), 1, weights, tolerance=0)
+    r = grouped_pair_sums(x, y, np.zeros(np.shape(x), dtype=np.int8), 1, weights, tolerance=0)
     return float(np.nan_to_num(r.total[0]))
 
 
@@ -192,8 +192,7 @@ def grouped_pair_sums(
     m = check_method(method, tolerance)
     lay = GroupLayout.build(x, y, groups, n_groups, weights)
     counts = lay.counts
-    pair_weight = 0.5 * np.bincount(lay.codes, lay.wpt * (lay.weight_sum[lay.codes] - lay.wpt), n_groups)
-    pair_weight = np.maximum(pair_weight, 0.0)
+    pair_weight = lay.pair_weight()
 
     total = np.full(n_groups, np.nan)
     lower = np.full(n_groups, np.nan)
@@ -277,8 +276,7 @@ def _bucket_budget(tolerance, m):
 def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
     """Exact part and uncertainty of the projected sums of ``groups``, with the compiled kernel."""
     m = cos_t.size
-    radius = np.zeros(lay.n_groups)
-    np.maximum.at(radius, lay.codes, np.hypot(lay.x, lay.y))
+    radius = lay.radius_max()
     exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
     work = lay.counts[groups] * m
     batches = np.cumsum(work) // _TASK_POINTS
@@ -367,7 +365,7 @@ def pair_distance_sum(x, y, weights=None, *, tolerance: float = 0.01, method: st
     """
     x = np.asarray(x, dtype=np.float64)
     r = grouped_pair_sums(
-        x, y, np.zeros(x.shape, dtype=np.int64), 1, weights, tolerance=tolerance, method=method
+        x, y, np.zeros(x.shape, dtype=np.int8), 1, weights, tolerance=tolerance, method=method
     )
     if np.isnan(r.total[0]):
         return PairSum(0.0, 0.0, 0.0, 0.0, "exact", 0, float(r.pair_weight[0]))

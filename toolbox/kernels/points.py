@@ -172,10 +172,7 @@ def grouped_point_sums(
     for array in (total, lower, upper, rel_bound):
         array[none] = np.nan
 
-    def unsort(values):
-        out = np.empty_like(values)
-        out[lay.order] = values
-        return out
+    unsort = lay.unsort
 
     return PointSums(
         total=unsort(total),
