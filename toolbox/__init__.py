@@ -18,6 +18,7 @@ from .errors import (
     PairspreadError,
     ParameterError,
 )
+from .geodesy import geodesic_cross_pair_sums, grouped_geodesic_pair_sums, grouped_geodesic_point_sums
 from .kernels import (
     CrossPairSums,
     GroupPairSums,
@@ -25,6 +26,9 @@ from .kernels import (
     PointSums,
     cross_pair_sums,
     directions_for_tolerance,
+    exact_geodesic_cross_sums,
+    exact_geodesic_pair_sums,
+    exact_geodesic_point_sums,
     exact_pair_sum,
     grouped_pair_sums,
     grouped_point_sums,
@@ -48,6 +52,12 @@ __all__ = [
     "cross_pair_sums",
     "PointSums",
     "CrossPairSums",
+    "grouped_geodesic_pair_sums",
+    "grouped_geodesic_point_sums",
+    "geodesic_cross_pair_sums",
+    "exact_geodesic_pair_sums",
+    "exact_geodesic_point_sums",
+    "exact_geodesic_cross_sums",
     "pair_distance_sum",
     "grouped_pair_sums",
     "exact_pair_sum",

@@ -77,6 +77,9 @@ POINT_SAMPLES = 64
 #: for PROJ's numerical derivatives (observed errors below 1e-8)
 SCALE_MARGIN_REL = 0.01
 SCALE_MARGIN_ABS = 5e-8
+#: error of one projected coordinate (metres, for an Earth-sized ellipsoid): PROJ's AEQD takes
+#: the geodesic distance and azimuth from the centre (Karney 2013: 15 nm) and rounds x and y
+FORWARD_ALLOWANCE = 5e-8
 #: a local projection is used only if it leaves at least this share of the tolerance to the
 #: planar estimate (otherwise its directions would grow without limit)
 MIN_PLANAR_SHARE = 0.01
@@ -236,8 +239,7 @@ def distance_setup(
         chosen = _parse_crs(target, script)
         if crs is None:
             raise InputError(
-                f"{label} has no CRS, so it cannot be reprojected to --crs {target!r}; assign "
-                "its CRS first."
+                f"{label} has no CRS, so it cannot be reprojected to --crs {target!r}; assign its CRS first."
             )
         axes = chosen.axis_info
         return DistanceSetup("planar", axes[0].unit_name if axes else "unknown", chosen)
@@ -368,23 +370,23 @@ def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
     vx, vy, vz = (cos_phi * np.cos(lam)).mean(), (cos_phi * np.sin(lam)).mean(), np.sin(phi).mean()
     norm = math.sqrt(vx * vx + vy * vy + vz * vz)
     if norm < 1e-6:
-        return _unusable("its points surround the Earth (they have no common centre)", radius_deg=180.0)
+        return _unusable("has points all around the Earth, with no common centre", radius_deg=180.0)
     lat0 = math.degrees(math.atan2(vz, math.hypot(vx, vy)))
     lon0 = math.degrees(math.atan2(vy, vx))
     try:
         proj = pyproj.Proj(proj="aeqd", lat_0=lat0, lon_0=lon0, a=a, f=f, units="m")
         x, y = proj(lon, lat)
     except pyproj.exceptions.ProjError as exc:  # pragma: no cover - PROJ refusing an ellipsoid
-        return _unusable(f"PROJ could not build its projection ({exc})", lon0=lon0, lat0=lat0)
+        return _unusable(f"cannot be projected by PROJ ({exc})", lon0=lon0, lat0=lat0)
     x, y = np.asarray(x, dtype=np.float64), np.asarray(y, dtype=np.float64)
     if not (np.isfinite(x).all() and np.isfinite(y).all()):
-        return _unusable("PROJ could not project all of its points", lon0=lon0, lat0=lat0)
+        return _unusable("has points PROJ could not project", lon0=lon0, lat0=lat0)
     r = np.hypot(x, y)
     radius_m = float(r.max()) if r.size else 0.0
     radius_deg = 90 * radius_m / _quarter_meridian(a, f)
     if radius_deg > MAX_RADIUS_DEG:
         return _unusable(
-            f"it reaches {radius_deg:.0f}° from its centre, more than {MAX_RADIUS_DEG:.0f}°",
+            f"reaches {radius_deg:.0f}° from its centre, more than {MAX_RADIUS_DEG:.0f}°",
             radius_m,
             radius_deg,
             lon0,
@@ -402,7 +404,7 @@ def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
     big = np.asarray(factors.tissot_semimajor, dtype=np.float64)
     small = np.asarray(factors.tissot_semiminor, dtype=np.float64)
     if not (np.isfinite(big).all() and np.isfinite(small).all()):
-        return _unusable("PROJ gave no scale factors for its region", radius_m, radius_deg, lon0, lat0)
+        return _unusable("has no scale factors from PROJ", radius_m, radius_deg, lon0, lat0)
     k_max = max(float(big.max()), 1.0)
     k_min = min(float(small.min()), 1.0)
     k_max += SCALE_MARGIN_REL * (k_max - 1) + SCALE_MARGIN_ABS
@@ -435,14 +437,16 @@ def planar_tolerance(tolerance: float, k_min: float, k_max: float) -> float:
     return (q - 1) / (q + 1)
 
 
-def fold_distortion(estimate, lower, upper, k_min, k_max):
+def fold_distortion(estimate, lower, upper, k_min, k_max, slack=0.0):
     """Interval and estimate of geodesic totals from those of projected totals.
 
     Every pair's projected length lies in ``[k_min, k_max]`` times its geodesic length, so a
     projected total in ``[lower, upper]`` puts the geodesic one in
-    ``[lower / k_max, upper / k_min]``. The estimate is the point that minimises the worst
-    relative error over that interval, ``2·lo·hi / (lo + hi)``, and the relative bound is
-    ``max(est/lo − 1, 1 − est/hi)``. Returns ``(estimate, lower, upper, rel_bound)``.
+    ``[lower / k_max, upper / k_min]``; ``slack`` (metres, ≥ 0) first widens the projected
+    interval on both sides, for the rounding of the projected coordinates. The estimate is the
+    point that minimises the worst relative error over the interval, ``2·lo·hi / (lo + hi)``,
+    and the relative bound is ``max(est/lo − 1, 1 − est/hi)``. Returns
+    ``(estimate, lower, upper, rel_bound)``.
 
     Examples
     --------
@@ -450,15 +454,22 @@ def fold_distortion(estimate, lower, upper, k_min, k_max):
     [0.999395, 0.989011, 1.01, 0.0105]
     """
     estimate = np.asarray(estimate, dtype=np.float64)
-    # division rounds by at most half an ulp; step outwards by two so the interval still holds
-    lo = np.asarray(lower, dtype=np.float64) / k_max * (1 - 2 * UNIT_ROUNDOFF)
-    hi = np.asarray(upper, dtype=np.float64) / k_min * (1 + 2 * UNIT_ROUNDOFF)
+    lower = np.maximum(np.asarray(lower, dtype=np.float64) - slack, 0.0)
+    upper = np.asarray(upper, dtype=np.float64) + slack
+    # each operation rounds by at most half an ulp; stepping outwards by 2u keeps the interval
+    lo = lower / k_max * (1 - 2 * UNIT_ROUNDOFF)
+    hi = upper / k_min * (1 + 2 * UNIT_ROUNDOFF)
     with np.errstate(divide="ignore", invalid="ignore"):
         est = np.where(lo > 0, 2 * lo * hi / (lo + hi), estimate * 2 / (k_min + k_max))
         est = np.clip(est, lo, hi)
         bound = np.maximum(np.where(lo > 0, est / lo - 1, np.inf), 1 - est / hi)
         bound = np.where(hi > 0, bound + 4 * UNIT_ROUNDOFF, 0.0)
     return est, lo, hi, bound
+
+
+def _forward_slack(a: float, pair_weight):
+    """Allowance for PROJ's rounding of the projected coordinates, ``2δ`` per pair distance."""
+    return FORWARD_ALLOWANCE * 2 * (a / WGS84_A) * np.asarray(pair_weight, dtype=np.float64)
 
 
 # --------------------------------------------------------------------------------------------
@@ -469,6 +480,12 @@ def _planar_cost(n, m):
     # the planar kernels' cost (projection or exact, whichever is cheaper), in seconds
     n = np.asarray(n, dtype=np.float64)
     return np.minimum(2e-5 + m * n * (25e-9 + 2.5e-9 * np.log2(n + 1)), 2.5e-9 * n * n)
+
+
+def _exact_is_cheaper(n, m, cost_factor):
+    """Whether exact geodesic sums cost less than a local projection plus the planar kernel."""
+    n = np.asarray(n, dtype=np.float64)
+    return GEODESIC_PAIR_COST * n * (n - 1) / 2 <= FRAME_COST + cost_factor * _planar_cost(n, m)
 
 
 class _Stages:
@@ -522,10 +539,10 @@ def _describe(label_of, g):
     return label_of(int(g)) if label_of is not None else f"group {int(g)}"
 
 
-def _too_wide(what, n, frame, tolerance):
+def _too_wide(what, n, frame, tolerance, smaller="split it into smaller groups (--group-by)"):
     if not frame.usable:
-        why = f"{what} {frame.reason}, where no local projection has a useful bound"
-        fix = "split it into smaller groups (--group-by)"
+        why = f"{what} {frame.reason}, so no local projection gives it a useful bound"
+        fix = smaller
     else:
         needed = 2 * frame.distortion
         why = (
@@ -533,7 +550,7 @@ def _too_wide(what, n, frame, tolerance):
             f"its farthest point) alone distorts distances by up to {frame.distortion:.2g}, which "
             f"leaves too little of the tolerance {tolerance:g}"
         )
-        fix = (f"use a tolerance of at least {needed:.2g} or " if needed <= 0.5 else "") + "use smaller groups"
+        fix = (f"use a tolerance of at least {needed:.2g} or " if needed <= 0.5 else "") + smaller
     return InputError(
         f"Geodesic sums: {why}, and its {n} points are too many for exact geodesic sums (at most "
         f"{EXACT_FALLBACK_POINTS}); {fix}, or pass --method exact (about {n * (n - 1) / 2e6:.3g} s "
@@ -554,10 +571,8 @@ def _plan(lon, lat, groups, n_groups, weights, a, f, tolerance, method, m0, labe
     x, y = np.full(lon.size, np.nan), np.full(lon.size, np.nan)
     if m0 == 0:
         return _Plan(order, counts, starts, weight_sum, live, live, live[:0], x, y, k_min, k_max, planar_tol)
-    n = counts[live].astype(np.float64)
-    exact_cost = GEODESIC_PAIR_COST * n * (n - 1) / 2
     if method == "auto":  # exact is cheaper even before the (larger) directions are known
-        cheap = exact_cost <= FRAME_COST + cost_factor * _planar_cost(n, m0)
+        cheap = _exact_is_cheaper(counts[live], m0, cost_factor)
     else:
         cheap = np.zeros(live.size, dtype=bool)
     exact, projected = list(live[cheap]), []
@@ -570,10 +585,7 @@ def _plan(lon, lat, groups, n_groups, weights, a, f, tolerance, method, m0, labe
                 exact.append(g)
                 continue
             raise _too_wide(_describe(label_of, g), int(counts[g]), frame, tolerance)
-        size = float(counts[g])
-        if method == "auto" and GEODESIC_PAIR_COST * size * (size - 1) / 2 <= FRAME_COST + cost_factor * float(
-            _planar_cost(size, directions_for_tolerance(planar))
-        ):
+        if method == "auto" and _exact_is_cheaper(counts[g], directions_for_tolerance(planar), cost_factor):
             exact.append(g)
             continue
         x[members], y[members] = frame.x, frame.y
@@ -668,7 +680,13 @@ def grouped_geodesic_pair_sums(
     if plan.exact.size:
         sel = np.isin(groups, plan.exact)
         r = exact_geodesic_pair_sums(
-            lon[sel], lat[sel], groups[sel], n_groups, _subset(weights, sel), a=a, f=f,
+            lon[sel],
+            lat[sel],
+            groups[sel],
+            n_groups,
+            _subset(weights, sel),
+            a=a,
+            f=f,
             progress=stages.stage(counts[plan.exact].sum()),
         )
         g = plan.exact
@@ -677,12 +695,23 @@ def grouped_geodesic_pair_sums(
     for members, planar in plan.buckets():
         sel = np.isin(groups, members)
         r = grouped_pair_sums(
-            plan.x[sel], plan.y[sel], groups[sel], n_groups, _subset(weights, sel),
-            tolerance=planar, method=method, progress=stages.stage(counts[members].sum()),
+            plan.x[sel],
+            plan.y[sel],
+            groups[sel],
+            n_groups,
+            _subset(weights, sel),
+            tolerance=planar,
+            method=method,
+            progress=stages.stage(counts[members].sum()),
         )
         g = members
         total[g], lower[g], upper[g], bound[g] = fold_distortion(
-            r.total[g], r.lower[g], r.upper[g], plan.k_min[g], plan.k_max[g]
+            r.total[g],
+            r.lower[g],
+            r.upper[g],
+            plan.k_min[g],
+            plan.k_max[g],
+            _forward_slack(a, r.pair_weight[g]),
         )
         dirs[g] = r.directions[g]
     return GroupPairSums(
@@ -748,7 +777,13 @@ def grouped_geodesic_point_sums(
     if plan.exact.size:
         sel = np.isin(groups, plan.exact)
         r = exact_geodesic_point_sums(
-            lon[sel], lat[sel], groups[sel], n_groups, _subset(weights, sel), a=a, f=f,
+            lon[sel],
+            lat[sel],
+            groups[sel],
+            n_groups,
+            _subset(weights, sel),
+            a=a,
+            f=f,
             progress=stages.stage(counts[plan.exact].sum()),
         )
         total[sel], lower[sel], upper[sel], bound[sel] = r.total, r.lower, r.upper, r.rel_bound
@@ -756,12 +791,18 @@ def grouped_geodesic_point_sums(
     for members, planar in plan.buckets():
         sel = np.isin(groups, members)
         r = grouped_point_sums(
-            plan.x[sel], plan.y[sel], groups[sel], n_groups, _subset(weights, sel),
-            tolerance=planar, method=method, progress=stages.stage(counts[members].sum()),
+            plan.x[sel],
+            plan.y[sel],
+            groups[sel],
+            n_groups,
+            _subset(weights, sel),
+            tolerance=planar,
+            method=method,
+            progress=stages.stage(counts[members].sum()),
         )
         codes = groups[sel]
         total[sel], lower[sel], upper[sel], bound[sel] = fold_distortion(
-            r.total, r.lower, r.upper, plan.k_min[codes], plan.k_max[codes]
+            r.total, r.lower, r.upper, plan.k_min[codes], plan.k_max[codes], _forward_slack(a, r.other_weight)
         )
         dirs[sel] = r.directions
     none = ~(other > 0)
@@ -824,14 +865,22 @@ def geodesic_cross_pair_sums(
         planar = planar_tolerance(tolerance, frame.k_min, frame.k_max) if frame.usable else 0.0
         if not frame.usable or planar < MIN_PLANAR_SHARE * tolerance:
             if n > EXACT_FALLBACK_POINTS:
-                raise _too_wide("the combined set of points", n, frame, tolerance)
+                raise _too_wide(
+                    "the combined set of points",
+                    n,
+                    frame,
+                    tolerance,
+                    smaller="compare groups that lie closer together (--where)",
+                )
             use_exact = True
     if use_exact:
         return exact_geodesic_cross_sums(lon, lat, groups, n_groups, weights, a=a, f=f, progress=progress)
     r = cross_pair_sums(
         frame.x, frame.y, groups, n_groups, weights, tolerance=planar, method=method, progress=progress
     )
-    total, lower, upper, bound = fold_distortion(r.total, r.lower, r.upper, frame.k_min, frame.k_max)
+    total, lower, upper, bound = fold_distortion(
+        r.total, r.lower, r.upper, frame.k_min, frame.k_max, _forward_slack(a, r.pair_weight)
+    )
     missing = np.isnan(r.total)
     for matrix in (total, lower, upper, bound):
         matrix[missing] = np.nan

@@ -79,7 +79,15 @@ def cross_spread(
         from_keys = to_keys = first_groups.keys
     if setup.kind == "geodesic":
         sums = geodesy.geodesic_cross_pair_sums(
-            x, y, codes, n_groups, w, a=setup.a, f=setup.f, tolerance=tolerance, method=method,
+            x,
+            y,
+            codes,
+            n_groups,
+            w,
+            a=setup.a,
+            f=setup.f,
+            tolerance=tolerance,
+            method=method,
             progress=progress,
         )
     else:
@@ -116,7 +124,7 @@ def cross_spread(
     order_rows = pd.unique(table["from_group"])
     order_cols = pd.unique(table["to_group"])
     matrix = matrix.reindex(index=order_rows, columns=order_cols)
-    matrix.columns = [("" if pd.isna(c) else str(c)) for c in matrix.columns]
+    matrix.columns = [("(null)" if pd.isna(c) else str(c)) for c in matrix.columns]  # GDAL drops unnamed fields
     return matrix.rename_axis("from_group").reset_index()
 
 
