@@ -10,7 +10,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from .manifest import Param, scripts
+from .manifest import Param, describe_range, scripts
 
 
 def _param_row(p: Param) -> str:
@@ -19,7 +19,7 @@ def _param_row(p: Param) -> str:
     if p.choices:
         allowed = " \\| ".join(f"`{c}`" for c in p.choices)
     elif p.min is not None or p.max is not None:
-        allowed = f"number in [{p.min:g}, {p.max:g}]"
+        allowed = ("integer" if p.kind == "integer" else "number") + describe_range(p)
     default = (
         "required"
         if p.kind == "dataset" or p.required

@@ -120,7 +120,9 @@ def _open(data, layer, engine, where):
 
 def _warn_if_nothing_matched(rows: int, where, label):
     if where and rows == 0:
-        warnings.warn(f"No feature of {label} matched the --where filter {where!r}.", UserWarning, stacklevel=3)
+        warnings.warn(
+            f"No feature of {label} matched the --where filter {where!r}.", UserWarning, stacklevel=3
+        )
 
 
 def _reading_failed(exc, label, where, engine):

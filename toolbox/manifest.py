@@ -268,9 +268,13 @@ def _convert(script: Script, p: Param, value: Any) -> Any:
         except (TypeError, ValueError):
             number = None
         if isinstance(value, bool) or number is None or (kind == "number" and math.isnan(number)):
-            raise _fail(script, p, f"a{'n integer' if kind == 'integer' else ' number'}{_range(p)}", value)
+            raise _fail(
+                script, p, f"a{'n integer' if kind == 'integer' else ' number'}{describe_range(p)}", value
+            )
         if (p.min is not None and number < p.min) or (p.max is not None and number > p.max):
-            raise _fail(script, p, f"a number{_range(p)}", value)
+            raise _fail(
+                script, p, f"{'an integer' if kind == 'integer' else 'a number'}{describe_range(p)}", value
+            )
         return number
     if kind == "choice":
         if value not in p.choices:
@@ -283,7 +287,8 @@ def _convert(script: Script, p: Param, value: Any) -> Any:
     raise ManifestError(f"Unknown parameter kind {kind!r}.")  # pragma: no cover
 
 
-def _range(p: Param) -> str:
+def describe_range(p: Param) -> str:
+    """The allowed range as text, e.g. " in [0, 0.5]" or " ≥ 1"."""
     if p.min is not None and p.max is not None:
         return f" in [{p.min:g}, {p.max:g}]"
     if p.min is not None:

@@ -12,6 +12,7 @@ import sys
 from typing import Any
 
 from . import layers
+from .kernels import thread_limit
 from .manifest import Script, get_script, validate
 
 __all__ = ["run", "run_script"]
@@ -67,7 +68,8 @@ def run_script(script: Script, values: dict[str, Any], *, cli: bool = False) -> 
     if "progress" in inspect.signature(function).parameters:
         call["progress"] = bar
     try:
-        result = function(**call)
+        with thread_limit(values.get("threads")):
+            result = function(**call)
     finally:
         bar.close()
     written = None

@@ -10,6 +10,7 @@ from ._common import (
     directions_for_tolerance,
     projection_error,
     projection_factors,
+    thread_limit,
 )
 from .cross import CrossPairSums, cross_pair_sums
 from .geodesic import exact_geodesic_cross_sums, exact_geodesic_pair_sums, exact_geodesic_point_sums
@@ -23,6 +24,7 @@ __all__ = [
     "directions_for_tolerance",
     "projection_error",
     "projection_factors",
+    "thread_limit",
     "exact_pair_sum",
     "pair_distance_sum",
     "grouped_pair_sums",

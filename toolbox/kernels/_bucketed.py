@@ -15,9 +15,9 @@ numba; without it the kernels fall back to sorting rows with numpy (same results
 from __future__ import annotations
 
 import numpy as np
-from numba import get_num_threads, njit, prange, set_num_threads
+from numba import njit, prange
 
-__all__ = ["bucketed_group_sums", "get_num_threads", "set_num_threads"]
+__all__ = ["bucketed_group_sums"]
 
 #: most buckets per group and direction: 3 arrays of 64 Ki doubles stay in a core's L2 cache
 MAX_BUCKETS = 1 << 16

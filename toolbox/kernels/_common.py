@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
@@ -346,3 +347,20 @@ class Ticker:
         self.done += int(units)
         if self.progress is not None:
             self.progress(self.done, self.total)
+
+
+@contextmanager
+def thread_limit(threads: int | None) -> Iterator[None]:
+    """Run the compiled kernels on at most ``threads`` threads inside the block (None: all)."""
+    try:
+        import numba
+    except ImportError:
+        yield
+        return
+    previous = numba.get_num_threads()
+    if threads:
+        numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    try:
+        yield
+    finally:
+        numba.set_num_threads(previous)

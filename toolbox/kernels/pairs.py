@@ -30,6 +30,7 @@ from ._common import (
     exact_rounding,
     projection_error,
     split_methods,
+    thread_limit,
 )
 
 try:
@@ -280,10 +281,7 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
     exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
     work = lay.counts[groups] * m
     batches = np.cumsum(work) // _TASK_POINTS
-    previous = _bucketed.get_num_threads()
-    if threads:
-        _bucketed.set_num_threads(max(1, min(int(threads), previous)))
-    try:
+    with thread_limit(threads):
         for batch in np.split(groups, np.flatnonzero(np.diff(batches)) + 1):
             e, u = _bucketed.bucketed_group_sums(
                 lay.x,
@@ -299,8 +297,6 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
             )
             exact_part[batch], uncertain[batch] = e, u
             tick(m * lay.counts[batch].sum())
-    finally:
-        _bucketed.set_num_threads(previous)
     return exact_part, uncertain
 
 

@@ -124,7 +124,9 @@ def cross_spread(
     order_rows = pd.unique(table["from_group"])
     order_cols = pd.unique(table["to_group"])
     matrix = matrix.reindex(index=order_rows, columns=order_cols)
-    matrix.columns = [("(null)" if pd.isna(c) else str(c)) for c in matrix.columns]  # GDAL drops unnamed fields
+    matrix.columns = [
+        ("(null)" if pd.isna(c) else str(c)) for c in matrix.columns
+    ]  # GDAL drops unnamed fields
     return matrix.rename_axis("from_group").reset_index()
 
 
