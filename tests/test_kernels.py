@@ -27,6 +27,7 @@ from toolbox import (
     exact_pair_sum,
     grouped_pair_sums,
     pair_distance_sum,
+    projection_directions,
     projection_error,
     projection_factors,
 )
@@ -82,11 +83,11 @@ def check_method(r, method: str, tolerance: float):
     if method == "exact" or tolerance == 0:
         assert (r.method, r.directions) == ("exact", 0)
     elif method == "projection":
-        assert (r.method, r.directions) == ("projection", directions_for_tolerance(tolerance))
+        assert (r.method, r.directions) == ("projection", projection_directions(tolerance))
     else:
         assert (r.method, r.directions) in (
             ("exact", 0),
-            ("projection", directions_for_tolerance(tolerance)),
+            ("projection", projection_directions(tolerance)),
         )
 
 
@@ -207,7 +208,7 @@ def test_grouped_against_per_group_pdist(weighted, method, tolerance):
     x, y, g, n_groups, w, refs = grouped_case(weighted)
     r = grouped_pair_sums(x, y, g, n_groups, w, tolerance=tolerance, method=method)
     assert r.total.shape == (n_groups,)
-    m = 0 if tolerance == 0 else directions_for_tolerance(tolerance)
+    m = 0 if tolerance == 0 else projection_directions(tolerance)
     for code, (size, reference, pair_weight) in enumerate(refs):
         assert r.n_points[code] == size
         assert r.weight_sum[code] == pytest.approx(size if w is None else math.fsum(w[g == code]))
@@ -290,7 +291,7 @@ def line_layout(tolerance, halfway: bool, n=300, seed=41):
     With m directions kπ/m, a line halfway between two of them (angle π/(2m)) and a line along
     one of them are the two extremes of the projected sum (see test_references.py).
     """
-    m = directions_for_tolerance(tolerance)
+    m = projection_directions(tolerance)
     angle = math.pi / (2 * m) if halfway else (m // 3) * math.pi / m
     t = np.random.default_rng(seed).uniform(0, 2000, n)
     return 350_000.0 + t * math.cos(angle), 6_100_000.0 + t * math.sin(angle), None
@@ -363,7 +364,7 @@ _layout_references: dict = {}
 
 
 def layout_case(name, tolerance):
-    key = (name, directions_for_tolerance(tolerance) if name.startswith("line") else None)
+    key = (name, projection_directions(tolerance) if name.startswith("line") else None)
     if key not in _layout_references:
         x, y, w = LAYOUTS[name](tolerance)
         _layout_references[key] = (x, y, w, pdist_total(x, y, w))  # scipy pdist
@@ -393,7 +394,7 @@ def test_interval_holds_at_the_worst_angles(tolerance, weighted):
     # On a line at an extreme angle the true total sits exactly on one end of the interval
     # (D = F·sin x or D = F·tan x), so only the kernels' rounding allowance keeps it inside;
     # many lines of random sizes make it likely that rounding falls on the wrong side somewhere
-    m = directions_for_tolerance(tolerance)
+    m = projection_directions(tolerance)
     rng = np.random.default_rng(61)
     for angle in (math.pi / (2 * m), 0.0, (m // 2) * math.pi / m):
         c, s = math.cos(angle), math.sin(angle)
@@ -482,7 +483,7 @@ def test_rotation_by_the_direction_step(tolerance):
     # exact sums do not change under any rotation; the projection estimate does, but not under a
     # rotation by a whole number of direction steps π/m, which only relabels the directions
     x, y, g, w = invariance_case()
-    m = directions_for_tolerance(tolerance)
+    m = projection_directions(tolerance)
     for angle, method in ((0.4321, "exact"), (math.pi / m, "projection"), (3 * math.pi / m, "projection")):
         c, s = math.cos(angle), math.sin(angle)
         base = grouped(x, y, g, w, method, tolerance)
@@ -581,3 +582,16 @@ def test_projection_factors_are_consistent():
     for m in (2, 3, 8, 786):
         lower, upper, estimate = projection_factors(m)
         assert lower < estimate < upper
+
+
+@pytest.mark.parametrize("tolerance", [0.5, 0.1, 0.01, 1e-3, 1e-4, 1e-5, 1e-6])
+def test_group_totals_use_the_fewest_directions_with_a_margin(tolerance):
+    # the group-total kernel takes the fewest directions of the Crofton bound tan²(π/4m) ≤ ε,
+    # unless they leave under 1 % of ε for the in-bucket uncertainty; then those for 0.99 ε
+    fewest = directions_for_tolerance(tolerance)
+    m = projection_directions(tolerance)
+    if tolerance - projection_error(fewest) >= 0.01 * tolerance:
+        assert m == fewest
+    else:
+        assert m == directions_for_tolerance(0.99 * tolerance) > fewest
+    assert projection_error(m) <= 0.99 * tolerance or m == fewest

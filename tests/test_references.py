@@ -35,6 +35,7 @@ from toolbox import (
     exact_pair_sum,
     grouped_pair_sums,
     pair_distance_sum,
+    projection_directions,
     projection_error,
     projection_factors,
 )
@@ -205,7 +206,7 @@ def test_projection_interval_contains_exact_total(name, tolerance):
     _, _, _, coarse_reference = region_case(name, 2)
     r = pair_distance_sum(x, y, w, tolerance=tolerance, method="projection")
     assert r.method == "projection"
-    assert r.directions == directions_for_tolerance(tolerance)
+    assert r.directions == projection_directions(tolerance)
     # the guaranteed interval holds the exact finite-sample total (scipy pdist)
     assert r.lower <= reference <= r.upper
     assert abs(r.total - reference) / reference <= r.rel_bound <= tolerance

@@ -33,6 +33,7 @@ from .kernels import (
     grouped_pair_sums,
     grouped_point_sums,
     pair_distance_sum,
+    projection_directions,
     projection_error,
     projection_factors,
 )
@@ -63,6 +64,7 @@ __all__ = [
     "exact_pair_sum",
     "directions_for_tolerance",
     "projection_error",
+    "projection_directions",
     "projection_factors",
     "PairSum",
     "GroupPairSums",

@@ -8,6 +8,7 @@ geodesic kernels take longitudes, latitudes and an ellipsoid's ``a`` and ``f`` a
 from ._common import (
     METHODS,
     directions_for_tolerance,
+    projection_directions,
     projection_error,
     projection_factors,
     thread_limit,
@@ -23,6 +24,7 @@ __all__ = [
     "PairSum",
     "directions_for_tolerance",
     "projection_error",
+    "projection_directions",
     "projection_factors",
     "thread_limit",
     "exact_pair_sum",

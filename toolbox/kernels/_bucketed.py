@@ -4,8 +4,9 @@ Along one direction, a group's projected values are dropped into B equal buckets
 radius. Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
 ``W_b`` and weighted position sum ``S_b`` alone (``Σ_b S_b·W_<b − W_b·S_<b``). A pair inside
 one bucket contributes between 0 and the bucket's spread of values times the pair weight (exactly
-the spread when the bucket holds two points); that uncertainty is reported. Buckets carrying too much of it (a dense cluster) are sorted and summed
-exactly, heaviest first, until what is left fits the budget. Bucket index and sums use the same
+the spread when the bucket holds two points); that uncertainty is reported. Buckets carrying too much of it (a dense cluster) are resolved,
+heaviest first, until what is left fits the budget: split again into sub-buckets over their own
+range, whose crowded ones are sorted, so their pairs are summed exactly. Bucket index and sums use the same
 float projection, and the index is a monotone function of it, so the ordering is exact.
 
 One (group, direction) pair is one task; tasks run in parallel threads. This module needs
@@ -19,7 +20,7 @@ from numba import njit, prange
 
 __all__ = ["bucketed_group_sums"]
 
-#: most buckets per group and direction: 3 arrays of 64 Ki doubles stay in a core's L2 cache
+#: most buckets per group and direction (crowded ones are split again, see _resolve)
 MAX_BUCKETS = 1 << 16
 
 
@@ -55,31 +56,34 @@ def _sorted_pair_sum(p, w):
 
 
 @njit(cache=True, nogil=True)
-def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
+def _one_task(x, y, w, weighted, start, n, c, s, radius, budget, max_buckets):
     """(exact part, remaining uncertainty) of one group's projected pair sum on one direction."""
     if n < 2 or radius <= 0.0:
-        return 0.0, 0.0
+        return 0.0, 0.0, 0.0
     buckets = 16
-    while buckets < 2 * n and buckets < MAX_BUCKETS:  # mostly one point or none per bucket
+    while buckets < 2 * n and buckets < max_buckets:  # mostly one point or none per bucket
         buckets *= 2
     scale = buckets / (2.0 * radius)
-    wb = np.zeros(buckets)
-    sb = np.zeros(buckets)
-    w2b = np.zeros(buckets)
-    lo = np.full(buckets, np.inf)
-    hi = np.full(buckets, -np.inf)
-    count = np.zeros(buckets, dtype=np.int64)
+    # one row per bucket (weight, weighted position, squared weights, count, min, max): a point
+    # touches one cache line, not six arrays
+    acc = np.zeros((buckets, 6))
+    for b in range(buckets):
+        acc[b, 4] = np.inf
+        acc[b, 5] = -np.inf
     for i in range(start, start + n):
         p = x[i] * c + y[i] * s
         b = int((p + radius) * scale)
         b = min(max(b, 0), buckets - 1)
         wi = w[i] if weighted else 1.0
-        wb[b] += wi
-        sb[b] += wi * p
-        w2b[b] += wi * wi
-        count[b] += 1
-        lo[b] = min(lo[b], p)
-        hi[b] = max(hi[b], p)
+        row = acc[b]
+        row[0] += wi
+        row[1] += wi * p
+        row[2] += wi * wi
+        row[3] += 1.0
+        row[4] = min(row[4], p)
+        row[5] = max(row[5], p)
+    wb, sb, w2b = acc[:, 0], acc[:, 1], acc[:, 2]
+    count, lo, hi = acc[:, 3], acc[:, 4], acc[:, 5]
     exact = 0.0
     acc_w = 0.0
     acc_s = 0.0
@@ -100,10 +104,14 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
     crowded = 0  # points in buckets of three or more
     for b in range(buckets):
         if count[b] > 2:
-            crowded += count[b]
+            crowded += int(count[b])
     cheap = 4 * crowded <= n or crowded <= 4096  # resolving them all costs little
+    # longest chain of additions behind any sum: a bucket's points, then the buckets twice
+    chain = 2.0 * buckets + 8.0
+    for b in range(buckets):
+        chain = max(chain, 2.0 * buckets + 8.0 + count[b])
     if uncertain == 0.0 or (not cheap and uncertain <= budget * exact):
-        return exact, uncertain
+        return exact, uncertain, chain
     # resolve buckets exactly, heaviest first, until the rest fits the budget (all, if cheap)
     if cheap:
         chosen = spread > 0.0
@@ -118,7 +126,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
             k += 1
     offsets = np.zeros(buckets + 1, dtype=np.int64)
     for b in range(buckets):
-        offsets[b + 1] = offsets[b] + (count[b] if chosen[b] else 0)
+        offsets[b + 1] = offsets[b] + (int(count[b]) if chosen[b] else 0)
     fill = offsets[:-1].copy()
     pv = np.empty(offsets[-1])
     wv = np.empty(offsets[-1])
@@ -132,26 +140,85 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
             fill[b] += 1
     for b in range(buckets):
         if chosen[b]:
+            part, left = _resolve(pv[offsets[b] : offsets[b + 1]], wv[offsets[b] : offsets[b + 1]])
+            exact += part
+            uncertain += left
+    return exact, max(uncertain, 0.0), chain
+
+
+@njit(cache=True, nogil=True)
+def _resolve(p, w):
+    """(exact part, uncertainty) of the pair sum of one crowded bucket's points.
+
+    Up to 32 points are sorted; more are split once more into sub-buckets over their own
+    range (about two per point), whose crowded ones are then sorted: cheaper than sorting a
+    dense cluster's bucket of thousands, and exact but for sub-buckets sharing equal values.
+    """
+    n = p.size
+    if n <= 32:
+        return _sorted_pair_sum(p, w), 0.0
+    lo, hi = p.min(), p.max()
+    if hi <= lo:
+        return 0.0, 0.0
+    k = 16
+    while k < 2 * n:
+        k *= 2
+    scale = k / (hi - lo)
+    sub = np.empty(n, dtype=np.int64)
+    acc = np.zeros((k, 3))  # weight, weighted position, count
+    for i in range(n):
+        b = min(int((p[i] - lo) * scale), k - 1)
+        sub[i] = b
+        acc[b, 0] += w[i]
+        acc[b, 1] += w[i] * p[i]
+        acc[b, 2] += 1.0
+    exact = 0.0
+    acc_w = 0.0
+    acc_s = 0.0
+    for b in range(k):
+        if acc[b, 2] > 0:
+            exact += acc[b, 1] * acc_w - acc[b, 0] * acc_s
+            acc_w += acc[b, 0]
+            acc_s += acc[b, 1]
+    # pairs sharing a sub-bucket: gather each crowded sub-bucket's points and sort them
+    offsets = np.zeros(k + 1, dtype=np.int64)
+    for b in range(k):
+        offsets[b + 1] = offsets[b] + (int(acc[b, 2]) if acc[b, 2] > 1 else 0)
+    fill = offsets[:-1].copy()
+    pv = np.empty(offsets[-1])
+    wv = np.empty(offsets[-1])
+    for i in range(n):
+        b = sub[i]
+        if acc[b, 2] > 1:
+            pv[fill[b]] = p[i]
+            wv[fill[b]] = w[i]
+            fill[b] += 1
+    for b in range(k):
+        if acc[b, 2] > 1:
             exact += _sorted_pair_sum(pv[offsets[b] : offsets[b + 1]], wv[offsets[b] : offsets[b + 1]])
-    return exact, max(uncertain, 0.0)
+    return exact, 0.0
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, budget):
+def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, budget, max_buckets):
     m = cos_t.size
     exact = np.zeros(groups.size * m)
     uncertain = np.zeros(groups.size * m)
+    chain = np.zeros(groups.size * m)
     for task in prange(groups.size * m):
         g = groups[task // m]
         k = task % m
-        e, u = _one_task(x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], budget)
+        e, u, c = _one_task(
+            x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], budget, max_buckets
+        )
         exact[task] = e
         uncertain[task] = u
-    return exact.reshape(groups.size, m).sum(axis=1), uncertain.reshape(groups.size, m).sum(axis=1)
+        chain[task] = c
+    return exact, uncertain, chain
 
 
 def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, budget):
-    """Summed over directions: exact part and uncertainty of each listed group's projected sums.
+    """Summed over directions: exact part, uncertainty and longest addition chain per group.
 
     ``x``, ``y`` (and ``w``, or None) are group-sorted and centred; ``radius`` bounds every
     point's distance from its group's centre; ``budget`` is the uncertainty allowed per
@@ -159,6 +226,14 @@ def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, b
     """
     weighted = w is not None
     wv = w if weighted else np.zeros(1)
-    return _all_tasks(
-        x, y, wv, weighted, starts, counts, np.asarray(groups, dtype=np.int64), cos_t, sin_t, radius, budget
+    groups = np.asarray(groups, dtype=np.int64)
+    max_buckets = MAX_BUCKETS
+    exact, uncertain, chain = _all_tasks(
+        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, budget, max_buckets
+    )
+    shape = (groups.size, cos_t.size)
+    return (
+        exact.reshape(shape).sum(axis=1),
+        uncertain.reshape(shape).sum(axis=1),
+        chain.reshape(shape).max(axis=1),
     )

@@ -80,6 +80,28 @@ def directions_for_tolerance(tolerance: float) -> int:
     return m
 
 
+#: share of the tolerance the directions leave unused for in-bucket uncertainty and rounding
+RESERVE = 0.01
+
+
+def projection_directions(tolerance: float) -> int:
+    """Directions the group-total kernel uses for ``tolerance``.
+
+    The fewest that meet the tolerance (:func:`directions_for_tolerance`), unless they leave
+    less than 1 % of it unused; then the fewest that meet 99 % of it, so that the bucketed sums
+    have room for their in-bucket uncertainty without sorting (1e-6 takes 790, not 786).
+
+    Examples
+    --------
+    >>> projection_directions(0.01), projection_directions(1e-4), projection_directions(1e-6)
+    (8, 79, 790)
+    """
+    m = directions_for_tolerance(tolerance)
+    if tolerance - projection_error(m) < RESERVE * tolerance:
+        m = directions_for_tolerance(tolerance * (1 - RESERVE))
+    return m
+
+
 def projection_factors(directions: int) -> tuple[float, float, float]:
     """Factors turning the summed projections ``F`` into bounds and the estimate.
 

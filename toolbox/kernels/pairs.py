@@ -9,7 +9,10 @@ direction the projected pair sum is exact after one sort. See ``docs/method.md``
 
 from __future__ import annotations
 
+import dataclasses
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -26,8 +29,10 @@ from ._common import (
     check_method,
     check_points,
     crofton_interval,
+    directions_for_tolerance,
     directions_unit_vectors,
     exact_rounding,
+    projection_directions,
     projection_error,
     split_methods,
     thread_limit,
@@ -191,6 +196,8 @@ def grouped_pair_sums(
     x, y, weights = check_points(x, y, weights)
     groups, n_groups = check_groups(groups, x.size, n_groups)
     m = check_method(method, tolerance)
+    if m and _bucketed is not None:
+        m = projection_directions(tolerance)
     lay = GroupLayout.build(x, y, groups, n_groups, weights)
     counts = lay.counts
     pair_weight = lay.pair_weight()
@@ -228,27 +235,19 @@ def grouped_pair_sums(
     exact[exact_groups] = True
 
     if proj_groups.size:
-        cos_t, sin_t = directions_unit_vectors(m)
-        if _bucketed is not None:
-            exact_part, uncertain = _bucketed_sums(lay, proj_groups, cos_t, sin_t, tolerance, tick, threads)
-        else:
-            exact_part, uncertain = np.zeros(n_groups), np.zeros(n_groups)
-            for chunk, index, valid in lay.chunks(proj_groups, lambda s: s):
-                cw = None if lay.w is None else lay.padded_weights(index, valid)
-                exact_part[chunk] = _projected_rows(
-                    lay.x[index], lay.y[index], cw, valid, counts[chunk], cos_t, sin_t
-                )
-                tick(m * counts[chunk].sum())
-        # Rounding: |c_i| ≤ w_i W_g and |p_i| ≤ r_i, so each direction's computed sum is within
-        # (4 n_g + 6)·u·W_g·Σ w_i r_i of the exact projected sum of the exact coordinates
-        # (local cumulative sums only; centring included). Bucket sums chain at most
-        # n_g + B ≤ 3 n_g additions, inside the same allowance.
-        slack = m * (4 * counts + 6) * UNIT_ROUNDOFF * lay.weight_sum * radius_sum
         g = proj_groups
-        total[g], lower[g], upper[g], rel_bound[g] = crofton_interval(
-            exact_part[g] + uncertain[g] / 2, slack[g] + uncertain[g] / 2, m
-        )
+        total[g], lower[g], upper[g], rel_bound[g] = _projection(lay, g, m, tolerance, tick, threads)
         dirs[g] = m
+        # The rounding allowance is written for the worst case; should it still push a bound
+        # over the tolerance, those groups are summed again with a wider margin.
+        over = g[rel_bound[g] > tolerance]
+        if over.size:
+            m2 = directions_for_tolerance(tolerance * 0.9)
+            retry = Ticker(None, 0)
+            total[over], lower[over], upper[over], rel_bound[over] = _projection(
+                lay, over, m2, tolerance, retry, threads
+            )
+            dirs[over] = m2
 
     return GroupPairSums(
         n_points=counts,
@@ -263,15 +262,81 @@ def grouped_pair_sums(
     )
 
 
+def _projection(lay, groups, m, tolerance, tick, threads):
+    """Estimate, bounds and rel_bound of the projected sums of ``groups`` with m directions."""
+    cos_t, sin_t = directions_unit_vectors(m)
+    radius_sum = lay.radius_sum()[groups]
+    weight_sum = lay.weight_sum[groups]
+    # Buckets beat sorting except for tight tolerances on unweighted layers, where numpy's
+    # vectorised sort with nothing to gather is the faster exact route.
+    tight = _bucket_budget(tolerance, m) < 1e-7
+    if _bucketed is not None and not (tight and lay.w is None):
+        source = _spatially_ordered(lay) if m >= _LOCALITY_DIRECTIONS else lay
+        exact_part, uncertain, chain = _bucketed_sums(source, groups, cos_t, sin_t, tolerance, tick, threads)
+    else:
+        exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
+        workers = max(1, min(threads or os.cpu_count() or 1, m))
+        with ThreadPoolExecutor(workers) as pool:  # numpy's sort lets go of the GIL
+            for chunk, index, valid in lay.chunks(groups, lambda s: s):
+                cw = None if lay.w is None else lay.padded_weights(index, valid)
+                cx, cy, n = lay.x[index], lay.y[index], lay.counts[chunk]
+                jobs = [
+                    pool.submit(_projected_rows, cx, cy, cw, valid, n, cos_t[k::workers], sin_t[k::workers])
+                    for k in range(workers)
+                ]
+                exact_part[chunk] = np.sum([job.result() for job in jobs], axis=0)
+                tick(m * lay.counts[chunk].sum())
+        chain = 2.0 * lay.counts  # cumulative sums over a row of n_g
+    # Rounding: every sum of one direction is bounded by W_g·Σ w_i r_i (|p_i| ≤ r_i, each
+    # coefficient at most w_i·W_g) and built from chains of at most `chain` additions, so it is
+    # within (2·chain + 6)·u·W_g·Σ w_i r_i of the exact projected sum of the exact
+    # coordinates (centring included).
+    slack = m * (2 * chain[groups] + 6) * UNIT_ROUNDOFF * weight_sum * radius_sum
+    part, spread = exact_part[groups], uncertain[groups]
+    return crofton_interval(part + spread / 2, slack + spread / 2, m)
+
+
+#: from this many directions on, points are first put in a space-filling-curve order
+_LOCALITY_DIRECTIONS = 64
+
+
+def _spread_bits(v):
+    """Spread the 16 low bits of v over the even bits of a 32-bit word."""
+    v = v.astype(np.uint64) & 0xFFFF
+    v = (v | (v << 8)) & 0x00FF00FF
+    v = (v | (v << 4)) & 0x0F0F0F0F
+    v = (v | (v << 2)) & 0x33333333
+    return (v | (v << 1)) & 0x55555555
+
+
+def _spatially_ordered(lay):
+    """The layout with each group's points in Morton (Z-curve) order.
+
+    Points near each other land in nearby buckets on every direction, so the bucket rows the
+    kernel touches stay in cache; with hundreds of directions that repays the one extra sort.
+    """
+    radius = lay.radius_max()
+    per_group = np.divide(32767.0, radius, out=np.zeros_like(radius), where=radius > 0)
+    scale = per_group[0] if lay.n_groups == 1 else per_group[lay.codes]
+    qx = np.clip((lay.x * scale + 32768.0), 0, 65535)
+    qy = np.clip((lay.y * scale + 32768.0), 0, 65535)
+    key = _spread_bits(qx) | (_spread_bits(qy) << 1)
+    key |= lay.codes.astype(np.uint64) << 32
+    order = np.argsort(key)
+    return dataclasses.replace(
+        lay, x=lay.x[order], y=lay.y[order], w=None if lay.w is None else lay.w[order], order=None
+    )
+
+
 def _bucket_budget(tolerance, m):
     """In-bucket uncertainty allowed per direction, relative to the exact part.
 
-    The fewest directions leave ``tolerance − tan²(π/4m)`` unused (at least a millionth of the
-    tolerance, see directions_for_tolerance); an uncertainty U beside an exact part F moves the
-    estimate by U/2, so U/F up to twice that margin keeps rel_bound within the tolerance. 10 %
-    of it is kept back for the rounding allowances.
+    The directions leave ``tolerance − tan²(π/4m)`` unused (at least 1 % of the tolerance, see
+    projection_directions); an uncertainty U beside an exact part F moves the estimate by U/2,
+    so U/F up to twice that margin keeps rel_bound within the tolerance. Half of it is kept
+    back for the rounding allowances.
     """
-    return 0.9 * 2 * (tolerance - projection_error(m)) / (1 + tolerance)
+    return 0.5 * 2 * (tolerance - projection_error(m)) / (1 + tolerance)
 
 
 def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
@@ -279,11 +344,12 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
     m = cos_t.size
     radius = lay.radius_max()
     exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
+    chain = np.zeros(lay.n_groups)
     work = lay.counts[groups] * m
     batches = np.cumsum(work) // _TASK_POINTS
     with thread_limit(threads):
         for batch in np.split(groups, np.flatnonzero(np.diff(batches)) + 1):
-            e, u = _bucketed.bucketed_group_sums(
+            e, u, c = _bucketed.bucketed_group_sums(
                 lay.x,
                 lay.y,
                 lay.w,
@@ -295,9 +361,9 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
                 radius,
                 _bucket_budget(tolerance, m),
             )
-            exact_part[batch], uncertain[batch] = e, u
+            exact_part[batch], uncertain[batch], chain[batch] = e, u, c
             tick(m * lay.counts[batch].sum())
-    return exact_part, uncertain
+    return exact_part, uncertain, chain
 
 
 def _projected_rows(cx, cy, cw, valid, n, cos_t, sin_t) -> np.ndarray:
