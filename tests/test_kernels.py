@@ -385,7 +385,10 @@ def test_adversarial_layouts(name, tolerance, method):
         m = r.directions
         over = name == "line halfway"
         sign = 1 if over == (m % 2 == 0) else -1
-        assert r.total / reference - 1 == pytest.approx(sign * projection_error(m), rel=1e-6)
+        # the bucketed sums may add up to half their in-bucket uncertainty, which the kernel
+        # keeps within the margin the directions leave under the tolerance
+        margin = max(tolerance - projection_error(m), 1e-6 * projection_error(m))
+        assert abs(r.total / reference - 1 - sign * projection_error(m)) <= margin
 
 
 @pytest.mark.parametrize("weighted", [False, True], ids=["unweighted", "weighted"])

@@ -16,14 +16,17 @@ import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import geopandas
 import numpy as np
 import pandas as pd
 import pyogrio
 import shapely
 
 from .errors import GeometryError, InputError, OutputError, ParameterError
+
+if TYPE_CHECKING:
+    import geopandas
 
 __all__ = [
     "ENGINES",
@@ -102,7 +105,9 @@ def _first_line(exc: BaseException) -> str:
 
 
 def _is_frame(data) -> bool:
-    return isinstance(data, geopandas.GeoDataFrame)
+    # geopandas loads only when needed (it is slow to import); a GeoDataFrame implies it is loaded
+    geopandas = sys.modules.get("geopandas")
+    return geopandas is not None and isinstance(data, geopandas.GeoDataFrame)
 
 
 def _open(data, layer, engine, where):
@@ -203,6 +208,8 @@ def read_layer(
             subset = None if where else columns
             frame = pyogrio.read_dataframe(path, layer=name, where=where, columns=subset, use_arrow=True)
         else:  # some fiona drivers cannot skip fields: read them all, keep the named ones after
+            import geopandas
+
             frame = geopandas.read_file(path, layer=name, where=where, engine="fiona")
     except Exception as exc:
         raise _reading_failed(exc, label, where, engine) from exc

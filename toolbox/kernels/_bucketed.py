@@ -105,7 +105,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget, max_buckets):
     for b in range(buckets):
         if count[b] > 2:
             crowded += int(count[b])
-    cheap = 4 * crowded <= n or crowded <= 4096  # resolving them all costs little
+    cheap = 4 * crowded <= n  # few collisions: resolving them all costs little
     # longest chain of additions behind any sum: a bucket's points, then the buckets twice
     chain = 2.0 * buckets + 8.0
     for b in range(buckets):

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -288,12 +289,17 @@ class GroupLayout:
         own = np.bincount(self.codes, self.w * self.w, self.n_groups)
         return np.maximum(0.5 * (self.weight_sum**2 - own), 0.0)
 
+    @functools.cached_property
+    def radius(self) -> np.ndarray:
+        """Distance of every point from its group's centre (computed once, then kept)."""
+        return np.sqrt(self.x * self.x + self.y * self.y)
+
     def radius_max(self) -> np.ndarray:
         """Largest distance of a point from its group's centre, per group (0 when empty)."""
         out = np.zeros(self.n_groups)
         filled = self.counts > 0
         if filled.any():
-            out[filled] = np.maximum.reduceat(np.hypot(self.x, self.y), self.starts[filled])
+            out[filled] = np.maximum.reduceat(self.radius, self.starts[filled])
         return out
 
     def padded(self, groups):
@@ -326,14 +332,16 @@ class GroupLayout:
     def padded_weights(self, index, valid):
         return np.where(valid, self.wpt[index], 0.0)
 
-    def radius_sum(self):
-        """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
-        radius = np.hypot(self.x, self.y)
-        if self.w is not None:
-            radius *= self.w
+    @functools.cached_property
+    def _radius_sum(self) -> np.ndarray:
+        weighted = self.radius if self.w is None else self.radius * self.w
         if self.n_groups == 1:
-            return np.array([radius.sum()])
-        return np.bincount(self.codes, radius, self.n_groups)
+            return np.array([weighted.sum()])
+        return np.bincount(self.codes, weighted, self.n_groups)
+
+    def radius_sum(self) -> np.ndarray:
+        """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
+        return self._radius_sum
 
 
 def cost_exact(n):
@@ -383,6 +391,9 @@ def thread_limit(threads: int | None) -> Iterator[None]:
     if threads:
         numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
     try:
-        yield
+        # hand tasks out one at a time: a thread that lost its core to another process then
+        # holds up only its current task, not a fixed half of them
+        with numba.parallel_chunksize(1):
+            yield
     finally:
         numba.set_num_threads(previous)

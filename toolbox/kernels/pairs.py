@@ -10,6 +10,7 @@ direction the projected pair sum is exact after one sort. See ``docs/method.md``
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import os
 from concurrent.futures import ThreadPoolExecutor
@@ -38,13 +39,21 @@ from ._common import (
     thread_limit,
 )
 
-try:
-    from . import _bucketed
-except ImportError:  # numba missing: sort rows with numpy instead (same results, slower)
-    _bucketed = None
+
+@functools.cache
+def _compiled():
+    """The numba kernel module, imported on first use (numba is slow to import); None without."""
+    try:
+        from . import _bucketed
+    except ImportError:  # numba missing: sort rows with numpy instead (same results, slower)
+        return None
+    return _bucketed
+
 
 #: point-directions per call of the compiled kernel, so that progress can be reported
 _TASK_POINTS = 1 << 24
+#: below this many point-directions the compiled kernel runs on one thread
+_SERIAL_POINTS = 1 << 20
 
 __all__ = ["GroupPairSums", "PairSum", "exact_pair_sum", "pair_distance_sum", "grouped_pair_sums"]
 
@@ -196,7 +205,7 @@ def grouped_pair_sums(
     x, y, weights = check_points(x, y, weights)
     groups, n_groups = check_groups(groups, x.size, n_groups)
     m = check_method(method, tolerance)
-    if m and _bucketed is not None:
+    if m and _compiled() is not None:
         m = projection_directions(tolerance)
     lay = GroupLayout.build(x, y, groups, n_groups, weights)
     counts = lay.counts
@@ -270,7 +279,7 @@ def _projection(lay, groups, m, tolerance, tick, threads):
     # Buckets beat sorting except for tight tolerances on unweighted layers, where numpy's
     # vectorised sort with nothing to gather is the faster exact route.
     tight = _bucket_budget(tolerance, m) < 1e-7
-    if _bucketed is not None and not (tight and lay.w is None):
+    if _compiled() is not None and not (tight and lay.w is None):
         source = _spatially_ordered(lay) if m >= _LOCALITY_DIRECTIONS else lay
         exact_part, uncertain, chain = _bucketed_sums(source, groups, cos_t, sin_t, tolerance, tick, threads)
     else:
@@ -347,9 +356,11 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
     chain = np.zeros(lay.n_groups)
     work = lay.counts[groups] * m
     batches = np.cumsum(work) // _TASK_POINTS
+    if work.sum() < _SERIAL_POINTS:  # starting the thread pool would cost more than it saves
+        threads = 1
     with thread_limit(threads):
         for batch in np.split(groups, np.flatnonzero(np.diff(batches)) + 1):
-            e, u, c = _bucketed.bucketed_group_sums(
+            e, u, c = _compiled().bucketed_group_sums(
                 lay.x,
                 lay.y,
                 lay.w,
