@@ -288,6 +288,12 @@ def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
             f"{label} has {int(wrong.sum())} feature(s) that are not points ({listed}); "
             "this script needs Point or MultiPoint features."
         )
+    if shapely.has_z(geometry).any():
+        warnings.warn(
+            f"{label} has Z coordinates; they are ignored (distances are measured in x and y).",
+            UserWarning,
+            stacklevel=4,
+        )
     coords, feature = shapely.get_coordinates(geometry, return_index=True)
     return _finish(attributes, coords[:, 0].copy(), coords[:, 1].copy(), feature, crs, label)
 
@@ -340,6 +346,13 @@ def _check_folder(path: Path):
 
 
 def _gpkg_layers(path: Path) -> list[str]:
+    with open(path, "rb") as handle:  # a GeoPackage is an SQLite file, whatever its name
+        header = handle.read(16)
+    if header != b"SQLite format 3\x00":
+        raise OutputError(
+            f"The existing file {str(path)!r} is not a GeoPackage; it was left untouched. "
+            "Choose another output."
+        )
     for sidecar in ("-wal", "-journal"):
         if Path(str(path) + sidecar).exists():
             raise OutputError(
@@ -359,6 +372,29 @@ def _umask() -> int:
     mask = os.umask(0o022)
     os.umask(mask)
     return mask
+
+
+def _shorten(name: str, limit: int = 10) -> str:
+    """``name`` cut to at most ``limit`` bytes of UTF-8, never inside a character."""
+    cut = name.encode("utf-8")[:limit]
+    return cut.decode("utf-8", errors="ignore")
+
+
+def shapefile_names(fields: Sequence[str]) -> dict[str, str]:
+    """Field names as a Shapefile will hold them (10 bytes), refusing any that would collide."""
+    names: dict[str, str] = {}
+    taken: dict[str, str] = {}
+    for name in fields:
+        short = _shorten(name)
+        if short.lower() in taken:
+            raise OutputError(
+                f"Fields {taken[short.lower()]!r} and {name!r} would both become {short!r} in a "
+                "Shapefile (10-character field names); rename one or write a "
+                "GeoPackage instead."
+            )
+        taken[short.lower()] = name
+        names[name] = short
+    return names
 
 
 def _shapefile_parts(target: Path) -> list[Path]:
@@ -420,21 +456,55 @@ def check_output(
                 )
         return
     if kind == "shp":
-        shortened: dict[str, str] = {}
-        for name in fields:
-            short = name[:10].lower()
-            if short in shortened:
-                raise OutputError(
-                    f"Fields {shortened[short]!r} and {name!r} would both become {name[:10]!r} in "
-                    "a Shapefile (10-character names); rename one or write a GeoPackage instead."
-                )
-            shortened[short] = name
+        shapefile_names(fields)  # refuses names that would collide once shortened
         existing = [p for p in _shapefile_parts(target) if p.exists()]
         if existing and not overwrite:
             raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
         return
     if target.exists() and not overwrite:
         raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
+
+
+def _check_written(tmp: Path, kind: str, rows: int, layer_name: str) -> None:
+    """Read back what was written: some writers ignore a failed write (a full disk) on close."""
+    if kind in ("csv", "parquet"):
+        return
+    try:
+        info = pyogrio.read_info(tmp, layer=layer_name if kind == "gpkg" else None)
+    except Exception as exc:
+        raise OutputError(
+            f"The output could not be read back ({_first_line(exc)}); nothing was written."
+        ) from exc
+    if info["features"] != rows:
+        raise OutputError(
+            f"Only {info['features']} of {rows} rows could be written (is the disk full or a "
+            "file-size limit set?); nothing was written."
+        )
+
+
+def _move_into_place(parts: list[Path], folder: Path, scratch: Path) -> None:
+    """Rename the new files over the old ones; if one rename fails, put the old ones back."""
+    backups: list[tuple[Path, Path]] = []
+    moved: list[Path] = []
+    try:
+        for part in parts:
+            final = folder / part.name
+            if final.exists():
+                shutil.copymode(final, part)
+                keep = scratch / (part.name + ".previous")
+                os.replace(final, keep)
+                backups.append((keep, final))
+            else:
+                os.chmod(part, 0o666 & ~_umask())
+            os.replace(part, final)
+            moved.append(final)
+    except BaseException:
+        for final in moved:
+            if not any(final == f for _, f in backups):
+                final.unlink(missing_ok=True)
+        for keep, final in backups:
+            os.replace(keep, final)
+        raise
 
 
 def write_output(
@@ -475,24 +545,28 @@ def write_output(
             frame.to_parquet(tmp, index=False)
         elif kind == "geojson":
             pyogrio.write_dataframe(frame, tmp, driver="GeoJSON")
-        else:
-            pyogrio.write_dataframe(frame, tmp, driver="ESRI Shapefile", encoding="UTF-8")
+        else:  # names are shortened here, at a character boundary, rather than by GDAL
+            renamed = {k: v for k, v in shapefile_names(fields).items() if k != v}
+            if renamed:
+                warnings.warn(
+                    "Shapefile field names are at most 10 characters: "
+                    + ", ".join(f"{k} → {v}" for k, v in renamed.items()),
+                    UserWarning,
+                    stacklevel=2,
+                )
+            out = frame.rename(columns=renamed)
+            pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
+        _check_written(tmp, kind, len(frame), layer_name)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
-        for part in produced:
-            final = target.parent / part.name
-            if not final.exists():
-                os.chmod(part, 0o666 & ~_umask())
-            else:
-                shutil.copymode(final, part)
-            os.replace(part, final)
+        _move_into_place(produced, target.parent, scratch)
     except BaseException as exc:
-        if isinstance(exc, OSError):
-            raise OutputError(
-                f"Writing {path!r} failed: {exc.strerror or exc}; nothing was written."
-            ) from exc
-        if isinstance(exc, Exception) and not isinstance(exc, OutputError):
-            raise OutputError(f"Writing {path!r} failed: {_first_line(exc)}; nothing was written.") from exc
-        raise
+        if isinstance(exc, (OutputError, KeyboardInterrupt, SystemExit)):
+            raise
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else _first_line(exc)
+        raise OutputError(
+            f"Writing {path!r} failed: {reason}; nothing was written. If the disk is full or a "
+            "file-size limit applies (ulimit -f), free space or raise the limit and run again."
+        ) from exc
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
     if kind == "gpkg":

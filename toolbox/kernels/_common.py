@@ -137,8 +137,9 @@ def crofton_interval(summed, slack, m):
     The slack grows by (m + 4)·u·F for adding up the m directions and the final products.
     """
     lo_f, hi_f, est_f = projection_factors(m)
-    summed = np.asarray(summed, dtype=np.float64)
-    slack = slack + (m + 4) * UNIT_ROUNDOFF * np.abs(summed)
+    # projected sums are sums of non-negative terms: rounding noise below 0 is 0
+    summed = np.maximum(np.asarray(summed, dtype=np.float64), 0.0)
+    slack = slack + (m + 4) * UNIT_ROUNDOFF * summed
     est = est_f * summed
     lo = lo_f * np.maximum(summed - slack, 0.0)
     hi = hi_f * (summed + slack)
@@ -224,7 +225,12 @@ def centre(x, y, codes, n_groups, w=None):
     """
     if n_groups == 1:  # one group: subtract scalars, no per-point temporaries
         weights = w if w is not None and w.sum() > 0 else None
-        return x - np.average(x, weights=weights), y - np.average(y, weights=weights)
+        if x.size == 0:
+            return x.copy(), y.copy()
+        # a mean is clamped into the values' range, so identical points centre to exact zeros
+        cx = min(max(np.average(x, weights=weights), x.min()), x.max())
+        cy = min(max(np.average(y, weights=weights), y.min()), y.max())
+        return x - cx, y - cy
     counts = np.bincount(codes, minlength=n_groups).astype(np.float64)
     if w is None:
         wsum, wx, wy = counts, np.bincount(codes, x, n_groups), np.bincount(codes, y, n_groups)
@@ -237,7 +243,14 @@ def centre(x, y, codes, n_groups, w=None):
             wx = np.where(plain, np.bincount(codes, x, n_groups), wx)
             wy = np.where(plain, np.bincount(codes, y, n_groups), wy)
     safe = np.maximum(wsum, np.finfo(np.float64).tiny)
-    return x - (wx / safe)[codes], y - (wy / safe)[codes]
+    mx, my = wx / safe, wy / safe
+    filled = counts > 0
+    if filled.any():  # clamp each mean into its group's range: identical points give zeros
+        starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)[filled]
+        for mean, v in ((mx, x), (my, y)):
+            lo, hi = np.minimum.reduceat(v, starts), np.maximum.reduceat(v, starts)
+            mean[filled] = np.clip(mean[filled], lo, hi)
+    return x - mx[codes], y - my[codes]
 
 
 @dataclass(frozen=True)
@@ -283,11 +296,26 @@ class GroupLayout:
         return out
 
     def pair_weight(self) -> np.ndarray:
-        """Σ_{i<j} w_i w_j per group."""
+        """Σ_{i<j} w_i w_j per group, as Σ_i w_i·(weight before i): no cancellation."""
         if self.w is None:
             return self.counts * (self.counts - 1) / 2.0
-        own = np.bincount(self.codes, self.w * self.w, self.n_groups)
-        return np.maximum(0.5 * (self.weight_sum**2 - own), 0.0)
+        out = np.zeros(self.n_groups)
+        for chunk, index, valid in self.chunks(np.flatnonzero(self.counts > 1), lambda s: s):
+            w = self.padded_weights(index, valid)
+            out[chunk] = (w * (np.cumsum(w, axis=1) - w)).sum(axis=1)
+        return out
+
+    def other_weight(self) -> np.ndarray:
+        """Σ_{j≠i} w_j of every point's group (group order), from sums before and after it."""
+        if self.w is None:
+            return (self.counts[self.codes] - 1).astype(np.float64)
+        out = np.zeros(self.x.size)
+        for _, index, valid in self.chunks(np.flatnonzero(self.counts > 0), lambda s: s):
+            w = self.padded_weights(index, valid)
+            before = np.cumsum(w, axis=1) - w
+            after = np.cumsum(w[:, ::-1], axis=1)[:, ::-1] - w
+            out[index[valid]] = (before + after)[valid]
+        return out
 
     @functools.cached_property
     def radius(self) -> np.ndarray:

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..errors import ParameterError
 from ._common import (
     BLOCK_ELEMENTS,
     UNIT_ROUNDOFF,
@@ -119,7 +120,7 @@ def cross_pair_sums(
     groups, n_groups = check_groups(groups, x.size, n_groups)
     m = check_method(method, tolerance)
     if n_groups > MAX_CROSS_GROUPS:
-        raise ValueError(
+        raise ParameterError(
             f"{n_groups} groups would make a {n_groups} × {n_groups} result; at most "
             f"{MAX_CROSS_GROUPS} groups are supported. Group by fewer or coarser fields."
         )

@@ -102,7 +102,7 @@ def grouped_point_sums(
     m = check_method(method, tolerance)
     lay = GroupLayout.build(x, y, groups, n_groups, weights)
     counts = lay.counts
-    other = lay.weight_sum[lay.codes] - lay.wpt
+    other = lay.other_weight()
 
     n = x.size
     total = np.full(n, np.nan)
