@@ -350,8 +350,8 @@ def _gpkg_layers(path: Path) -> list[str]:
         header = handle.read(16)
     if header != b"SQLite format 3\x00":
         raise OutputError(
-            f"The existing file {str(path)!r} is not a GeoPackage; it was left untouched. "
-            "Choose another output."
+            f"The existing file {str(path)!r} cannot be opened as a GeoPackage (it is not an "
+            "SQLite file); it was left untouched. Choose another output."
         )
     for sidecar in ("-wal", "-journal"):
         if Path(str(path) + sidecar).exists():
