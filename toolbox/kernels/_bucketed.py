@@ -76,13 +76,17 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget, max_buckets):
         b = min(max(b, 0), buckets - 1)
         wi = w[i] if weighted else 1.0
         row = acc[b]
+        # column 2: the first point's weight, then the product of the first two weights
+        if row[3] == 0.0:
+            row[2] = wi
+        elif row[3] == 1.0:
+            row[2] *= wi
         row[0] += wi
         row[1] += wi * p
-        row[2] += wi * wi
         row[3] += 1.0
         row[4] = min(row[4], p)
         row[5] = max(row[5], p)
-    wb, sb, w2b = acc[:, 0], acc[:, 1], acc[:, 2]
+    wb, sb, first_two = acc[:, 0], acc[:, 1], acc[:, 2]
     count, lo, hi = acc[:, 3], acc[:, 4], acc[:, 5]
     exact = 0.0
     acc_w = 0.0
@@ -94,12 +98,10 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget, max_buckets):
         exact += sb[b] * acc_w - wb[b] * acc_s
         acc_w += wb[b]
         acc_s += sb[b]
-        if count[b] > 1:
-            pairs = max(0.5 * (wb[b] * wb[b] - w2b[b]), 0.0)
-            if count[b] == 2:  # its one pair is exactly the bucket's spread apart
-                exact += (hi[b] - lo[b]) * pairs
-            else:
-                spread[b] = (hi[b] - lo[b]) * pairs
+        if count[b] == 2:  # its one pair is exactly the bucket's spread apart
+            exact += (hi[b] - lo[b]) * first_two[b]
+        elif count[b] > 2:  # its pair weight is at most W_b²/2 (a bound without cancellation)
+            spread[b] = (hi[b] - lo[b]) * 0.5 * wb[b] * wb[b]
     uncertain = spread.sum()
     crowded = 0  # points in buckets of three or more
     for b in range(buckets):

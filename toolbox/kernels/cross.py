@@ -158,7 +158,7 @@ def cross_pair_sums(
         slack = m * (blocks + beta + 16) * UNIT_ROUNDOFF * 4 * radius * np.outer(weight_sum, weight_sum)
         total, lower, upper, rel_bound = crofton_interval(summed, slack, m)
         directions = m
-        _exact_where_rounding_dominates(
+        redone = _exact_where_rounding_dominates(
             cx, cy, groups, n_groups, w, tolerance, total, lower, upper, rel_bound
         )
 
@@ -166,6 +166,9 @@ def cross_pair_sums(
     pair_weight = np.outer(weight_sum, weight_sum)
     exact = np.full(total.shape, use_exact)
     dirs = np.full(total.shape, directions, dtype=np.int64)
+    if not use_exact:
+        exact[redone] = True
+        dirs[redone] = 0
     diag = np.arange(n_groups)
     pair_weight[diag, diag] = within.pair_weight
     for matrix, values in (
@@ -229,8 +232,10 @@ def _exact_where_rounding_dominates(x, y, groups, n_groups, w, tolerance, total,
     The allowance is written in the radius of the whole layer, so two tight clusters far from
     the rest can get a bound above the tolerance although their estimate is fine; an exact
     sum over just those two groups settles it (in place, when it costs under 1e8 pairs).
+    Returns the mask of entries recomputed.
     """
     counts = np.bincount(groups, minlength=n_groups)
+    redone = np.zeros(total.shape, dtype=bool)
     over = np.argwhere(np.triu(rel_bound > tolerance, 1))
     for a, b in over:
         if counts[a] * counts[b] > 1e8:
@@ -249,6 +254,8 @@ def _exact_where_rounding_dominates(x, y, groups, n_groups, w, tolerance, total,
         bound = rounding + shift / entry if entry > 0 else 0.0
         for matrix, value in ((total, entry), (lower, lo), (upper, hi), (rel_bound, bound)):
             matrix[a, b] = matrix[b, a] = value
+        redone[a, b] = redone[b, a] = True
+    return redone
 
 
 def _exact_cross(x, y, groups, n_groups, w, tick) -> np.ndarray:

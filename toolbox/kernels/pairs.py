@@ -284,7 +284,7 @@ def _projection(lay, groups, m, tolerance, tick, threads):
         exact_part, uncertain, chain = _bucketed_sums(source, groups, cos_t, sin_t, tolerance, tick, threads)
     else:
         exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
-        workers = max(1, min(threads or os.cpu_count() or 1, m))
+        workers = max(1, min(threads or _default_threads(), m))
         with ThreadPoolExecutor(workers) as pool:  # numpy's sort lets go of the GIL
             for chunk, index, valid in lay.chunks(groups, lambda s: s):
                 cw = None if lay.w is None else lay.padded_weights(index, valid)
@@ -335,6 +335,16 @@ def _spatially_ordered(lay):
     return dataclasses.replace(
         lay, x=lay.x[order], y=lay.y[order], w=None if lay.w is None else lay.w[order], order=None
     )
+
+
+def _default_threads() -> int:
+    """Threads when none are asked for: numba's current setting (the runner's --threads)."""
+    compiled = _compiled()
+    if compiled is not None:
+        import numba
+
+        return numba.get_num_threads()
+    return os.cpu_count() or 1
 
 
 def _bucket_budget(tolerance, m):
