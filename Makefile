@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint docs bench clean
+.PHONY: demo test lint docs bench fuzz clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -32,7 +32,7 @@ docs: $(STAMP)
 	$(BIN)/python -m toolbox.docgen docs/scripts.md
 
 bench: $(STAMP)
-	$(BIN)/python bench/bench_group_spread.py
+	$(BIN)/python bench/bench_suite.py
 
 clean:
 	rm -rf $(VENV) demo_output bench/data
