@@ -34,5 +34,9 @@ docs: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/bench_suite.py
 
+fuzz: $(STAMP)
+	HYPOTHESIS_PROFILE=long $(BIN)/python -m pytest -q tests/test_properties.py
+	PAIRSPREAD_KILL_TRIALS=500 $(BIN)/python -m pytest -q -rP tests/test_safety.py -k sigkill
+
 clean:
 	rm -rf $(VENV) demo_output bench/data

@@ -465,7 +465,7 @@ def check_output(
         raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
 
 
-def _check_written(tmp: Path, kind: str, rows: int, layer_name: str) -> None:
+def _check_written(tmp: Path, kind: str, rows: int, columns: int, layer_name: str, path: str) -> None:
     """Read back what was written: some writers ignore a failed write (a full disk) on close."""
     if kind in ("csv", "parquet"):
         return
@@ -475,9 +475,10 @@ def _check_written(tmp: Path, kind: str, rows: int, layer_name: str) -> None:
         raise OutputError(
             f"The output could not be read back ({_first_line(exc)}); nothing was written."
         ) from exc
-    if info["features"] != rows:
+    if info["features"] != rows or len(info["fields"]) != columns:
         raise OutputError(
-            f"Only {info['features']} of {rows} rows could be written (is the disk full or a "
+            f"Writing {path!r} failed: only part of it could be written ({info['features']} of {rows} rows, "
+            f"{len(info['fields'])} of {columns} fields read back; is the disk full or a "
             "file-size limit set?); nothing was written."
         )
 
@@ -492,7 +493,12 @@ def _move_into_place(parts: list[Path], folder: Path, scratch: Path) -> None:
             if final.exists():
                 shutil.copymode(final, part)
                 keep = scratch / (part.name + ".previous")
-                os.replace(final, keep)
+                # a second name for the old file, so the output's path is never empty: the
+                # rename below replaces it in one step, and a failure can put it back
+                try:
+                    os.link(final, keep)
+                except OSError:
+                    shutil.copy2(final, keep)
                 backups.append((keep, final))
             else:
                 os.chmod(part, 0o666 & ~_umask())
@@ -531,8 +537,9 @@ def write_output(
         sys.stdout.flush()
         return "standard output"
     target = Path(path)
-    scratch = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent))
+    scratch = None
     try:
+        scratch = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent))
         tmp = scratch / target.name
         if kind == "gpkg":
             if target.exists():
@@ -556,7 +563,7 @@ def write_output(
                 )
             out = frame.rename(columns=renamed)
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
-        _check_written(tmp, kind, len(frame), layer_name)
+        _check_written(tmp, kind, len(frame), len(fields), layer_name, path)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
         _move_into_place(produced, target.parent, scratch)
     except BaseException as exc:
@@ -568,7 +575,8 @@ def write_output(
             "file-size limit applies (ulimit -f), free space or raise the limit and run again."
         ) from exc
     finally:
-        shutil.rmtree(scratch, ignore_errors=True)
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
     if kind == "gpkg":
         return f"{'table' if what == 'table' else 'layer'} {layer_name!r} in {path}"
     return str(path)

@@ -253,6 +253,13 @@ def centre(x, y, codes, n_groups, w=None):
     return x - mx[codes], y - my[codes]
 
 
+def _before(w: np.ndarray) -> np.ndarray:
+    """Exclusive cumulative sums along rows (0, w0, w0 + w1, ...): no subtraction, no cancellation."""
+    out = np.zeros_like(w)
+    np.cumsum(w[:, :-1], axis=1, out=out[:, 1:])
+    return out
+
+
 @dataclass(frozen=True)
 class GroupLayout:
     """Points sorted by group, each group centred on its (weighted) mean (see :func:`centre`)."""
@@ -302,7 +309,7 @@ class GroupLayout:
         out = np.zeros(self.n_groups)
         for chunk, index, valid in self.chunks(np.flatnonzero(self.counts > 1), lambda s: s):
             w = self.padded_weights(index, valid)
-            out[chunk] = (w * (np.cumsum(w, axis=1) - w)).sum(axis=1)
+            out[chunk] = (w * _before(w)).sum(axis=1)
         return out
 
     def other_weight(self) -> np.ndarray:
@@ -312,9 +319,8 @@ class GroupLayout:
         out = np.zeros(self.x.size)
         for _, index, valid in self.chunks(np.flatnonzero(self.counts > 0), lambda s: s):
             w = self.padded_weights(index, valid)
-            before = np.cumsum(w, axis=1) - w
-            after = np.cumsum(w[:, ::-1], axis=1)[:, ::-1] - w
-            out[index[valid]] = (before + after)[valid]
+            after = _before(w[:, ::-1])[:, ::-1]
+            out[index[valid]] = (_before(w) + after)[valid]
         return out
 
     @functools.cached_property
