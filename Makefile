@@ -19,7 +19,7 @@ demo: $(STAMP)
 	$(BIN)/pairspread group-spread sample_layers/households_east.shp --group-by district,tenure \
 	    --output demo_output/spread_east.csv --overwrite
 	@echo "The tables went to demo_output/spread.gpkg (table 'group_spread') and demo_output/spread_east.csv:"
-	@$(BIN)/python -c "import pyogrio; print(pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread').to_string(index=False))"
+	@$(BIN)/python -c "import pyogrio; t = pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread'); print(t.to_string(index=False, na_rep=''))"
 
 test: $(STAMP) lint
 	$(BIN)/python -m pytest -q toolbox tests
