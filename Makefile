@@ -33,6 +33,7 @@ docs: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python bench/bench_suite.py
+	$(BIN)/python bench/bench_cross_spread.py
 
 fuzz: $(STAMP)
 	HYPOTHESIS_PROFILE=long $(BIN)/python -m pytest -q tests/test_properties.py
