@@ -3,14 +3,16 @@
 Along one direction, a group's projected values are dropped into B equal buckets spanning its
 radius. Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
 ``W_b`` and weighted position sum ``S_b`` alone (``Σ_b S_b·W_<b − W_b·S_<b``). A pair inside
-one bucket contributes between 0 and the bucket's spread of values times the pair weight (exactly
-the spread when the bucket holds two points); that uncertainty is reported. Buckets carrying too much of it (a dense cluster) are resolved,
-heaviest first, until what is left fits the budget: split again into sub-buckets over their own
-range, whose crowded ones are sorted, so their pairs are summed exactly. Bucket index and sums use the same
-float projection, and the index is a monotone function of it, so the ordering is exact.
+one bucket contributes between 0 and the bucket's spread of values times the pair weight
+(exactly the spread when the bucket holds two points); that uncertainty is reported. Buckets
+carrying too much of it (a dense cluster) are resolved, heaviest first, until what is left fits
+the budget: split again into sub-buckets over their own range, whose crowded ones are sorted,
+so their pairs are summed exactly. Bucket index and sums use the same float projection, and the
+index is a monotone function of it, so the ordering is exact.
 
 One (group, direction) pair is one task; tasks run in parallel threads. This module needs
-numba; without it the kernels fall back to sorting rows with numpy (same results).
+numba; without it the kernels fall back to sorting rows with numpy (exact along each
+direction, so the results differ only within the same guaranteed bounds).
 """
 
 from __future__ import annotations
@@ -56,12 +58,12 @@ def _sorted_pair_sum(p, w):
 
 
 @njit(cache=True, nogil=True)
-def _one_task(x, y, w, weighted, start, n, c, s, radius, budget, max_buckets):
+def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
     """(exact part, remaining uncertainty) of one group's projected pair sum on one direction."""
     if n < 2 or radius <= 0.0:
         return 0.0, 0.0, 0.0
     buckets = 16
-    while buckets < 2 * n and buckets < max_buckets:  # mostly one point or none per bucket
+    while buckets < 2 * n and buckets < MAX_BUCKETS:  # mostly one point or none per bucket
         buckets *= 2
     scale = buckets / (2.0 * radius)
     # one row per bucket (weight, weighted position, squared weights, count, min, max): a point
@@ -202,7 +204,7 @@ def _resolve(p, w):
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, budget, max_buckets):
+def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, budget):
     m = cos_t.size
     exact = np.zeros(groups.size * m)
     uncertain = np.zeros(groups.size * m)
@@ -210,9 +212,7 @@ def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, 
     for task in prange(groups.size * m):
         g = groups[task // m]
         k = task % m
-        e, u, c = _one_task(
-            x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], budget, max_buckets
-        )
+        e, u, c = _one_task(x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], budget)
         exact[task] = e
         uncertain[task] = u
         chain[task] = c
@@ -229,9 +229,8 @@ def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, b
     weighted = w is not None
     wv = w if weighted else np.zeros(1)
     groups = np.asarray(groups, dtype=np.int64)
-    max_buckets = MAX_BUCKETS
     exact, uncertain, chain = _all_tasks(
-        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, budget, max_buckets
+        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, budget
     )
     shape = (groups.size, cos_t.size)
     return (
