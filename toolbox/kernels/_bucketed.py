@@ -63,7 +63,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
     if n < 2 or radius <= 0.0:
         return 0.0, 0.0, 0.0
     buckets = 16
-    while buckets < 2 * n and buckets < MAX_BUCKETS:  # mostly one point or none per bucket
+    while 2 * buckets < n and buckets < MAX_BUCKETS:  # about two points per bucket, at most 64 Ki
         buckets *= 2
     scale = buckets / (2.0 * radius)
     # one row per bucket (weight, weighted position, squared weights, count, min, max): a point
