@@ -37,7 +37,7 @@ from .kernels import (
     grouped_pair_sums,
     grouped_point_sums,
 )
-from .kernels._common import UNIT_ROUNDOFF, check_groups, check_method
+from .kernels._common import UNIT_ROUNDOFF, check_groups, check_method, weights_of_others
 from .kernels.geodesic import (
     WGS84_A,
     WGS84_F,
@@ -673,7 +673,7 @@ def grouped_geodesic_pair_sums(
     plan = _plan(lon, lat, groups, n_groups, weights, a, f, tolerance, method, m0, label_of, 1.0)
     counts = plan.counts
     stages = _Stages(progress, counts[plan.live].sum())
-    pair_weight = np.maximum(0.5 * np.bincount(groups, _pair_share(weights, groups, plan), n_groups), 0.0)
+    pair_weight = weights_of_others(groups, n_groups, weights)[1]
     total, lower, upper, bound = (np.full(n_groups, np.nan) for _ in range(4))
     exact = np.zeros(n_groups, dtype=bool)
     dirs = np.zeros(n_groups, dtype=np.int64)
@@ -727,11 +727,6 @@ def grouped_geodesic_pair_sums(
     )
 
 
-def _pair_share(weights, groups, plan):
-    w = np.ones(groups.size) if weights is None else weights
-    return w * (plan.weight_sum[groups] - w)
-
-
 def grouped_geodesic_point_sums(
     lon,
     lat,
@@ -769,8 +764,7 @@ def grouped_geodesic_point_sums(
     counts = plan.counts
     stages = _Stages(progress, counts[plan.live].sum())
     n = lon.size
-    w = np.ones(n) if weights is None else weights
-    other = plan.weight_sum[groups] - w
+    other = weights_of_others(groups, n_groups, weights)[0]
     total, lower, upper, bound = (np.full(n, np.nan) for _ in range(4))
     exact = np.zeros(n, dtype=bool)
     dirs = np.zeros(n, dtype=np.int64)

@@ -25,6 +25,7 @@ from ._common import (
     Ticker,
     check_groups,
     check_points,
+    weights_of_others,
 )
 from .cross import MAX_CROSS_GROUPS, CrossPairSums
 from .pairs import GroupPairSums
@@ -154,7 +155,7 @@ class _Layout:
         self.weighted = weights is not None
         self.w = np.ones(lon.size) if weights is None else weights[self.order]
         self.weight_sum = np.bincount(self.codes, self.w, n_groups)
-        self.other = self.weight_sum[self.codes] - self.w
+        self.other = weights_of_others(self.codes, n_groups, weights if weights is None else self.w)[0]
 
     def distances(self, geod, i, j):
         _, _, s = geod.inv(self.lon[i], self.lat[i], self.lon[j], self.lat[j])
