@@ -611,6 +611,42 @@ def _subset(weights, sel):
     return None if weights is None else weights[sel]
 
 
+def _run_stages(
+    plan, lon, lat, groups, n_groups, weights, a, f, method, progress, exact_kernel, planar_kernel
+):
+    """Run a plan: exact geodesic sums for its exact groups, then each bucket of planar groups.
+
+    Yields ``(members, point mask, result, projected)``; the caller folds projected results.
+    """
+    stages = _Stages(progress, plan.counts[plan.live].sum())
+    if plan.exact.size:
+        sel = np.isin(groups, plan.exact)
+        r = exact_kernel(
+            lon[sel],
+            lat[sel],
+            groups[sel],
+            n_groups,
+            _subset(weights, sel),
+            a=a,
+            f=f,
+            progress=stages.stage(plan.counts[plan.exact].sum()),
+        )
+        yield plan.exact, sel, r, False
+    for members, planar in plan.buckets():
+        sel = np.isin(groups, members)
+        r = planar_kernel(
+            plan.x[sel],
+            plan.y[sel],
+            groups[sel],
+            n_groups,
+            _subset(weights, sel),
+            tolerance=planar,
+            method=method,
+            progress=stages.stage(plan.counts[members].sum()),
+        )
+        yield members, sel, r, True
+
+
 def grouped_geodesic_pair_sums(
     lon,
     lat,
@@ -672,39 +708,20 @@ def grouped_geodesic_pair_sums(
     m0 = check_method(method, tolerance)
     plan = _plan(lon, lat, groups, n_groups, weights, a, f, tolerance, method, m0, label_of, 1.0)
     counts = plan.counts
-    stages = _Stages(progress, counts[plan.live].sum())
     pair_weight = weights_of_others(groups, n_groups, weights)[1]
     total, lower, upper, bound = (np.full(n_groups, np.nan) for _ in range(4))
     exact = np.zeros(n_groups, dtype=bool)
     dirs = np.zeros(n_groups, dtype=np.int64)
-    if plan.exact.size:
-        sel = np.isin(groups, plan.exact)
-        r = exact_geodesic_pair_sums(
-            lon[sel],
-            lat[sel],
-            groups[sel],
-            n_groups,
-            _subset(weights, sel),
-            a=a,
-            f=f,
-            progress=stages.stage(counts[plan.exact].sum()),
-        )
-        g = plan.exact
-        total[g], lower[g], upper[g], bound[g] = r.total[g], r.lower[g], r.upper[g], r.rel_bound[g]
-        exact[g] = r.exact[g]
-    for members, planar in plan.buckets():
-        sel = np.isin(groups, members)
-        r = grouped_pair_sums(
-            plan.x[sel],
-            plan.y[sel],
-            groups[sel],
-            n_groups,
-            _subset(weights, sel),
-            tolerance=planar,
-            method=method,
-            progress=stages.stage(counts[members].sum()),
-        )
+    stages = _run_stages(
+        plan, lon, lat, groups, n_groups, weights, a, f, method, progress,
+        exact_geodesic_pair_sums, grouped_pair_sums,
+    )  # fmt: skip
+    for members, _, r, projected in stages:
         g = members
+        if not projected:
+            total[g], lower[g], upper[g], bound[g] = r.total[g], r.lower[g], r.upper[g], r.rel_bound[g]
+            exact[g] = r.exact[g]
+            continue
         total[g], lower[g], upper[g], bound[g] = fold_distortion(
             r.total[g],
             r.lower[g],
@@ -761,39 +778,20 @@ def grouped_geodesic_point_sums(
     groups, n_groups = check_groups(groups, lon.size, n_groups)
     m0 = check_method(method, tolerance)
     plan = _plan(lon, lat, groups, n_groups, weights, a, f, tolerance, method, m0, label_of, 2.0)
-    counts = plan.counts
-    stages = _Stages(progress, counts[plan.live].sum())
     n = lon.size
     other = weights_of_others(groups, n_groups, weights)[0]
     total, lower, upper, bound = (np.full(n, np.nan) for _ in range(4))
     exact = np.zeros(n, dtype=bool)
     dirs = np.zeros(n, dtype=np.int64)
-    if plan.exact.size:
-        sel = np.isin(groups, plan.exact)
-        r = exact_geodesic_point_sums(
-            lon[sel],
-            lat[sel],
-            groups[sel],
-            n_groups,
-            _subset(weights, sel),
-            a=a,
-            f=f,
-            progress=stages.stage(counts[plan.exact].sum()),
-        )
-        total[sel], lower[sel], upper[sel], bound[sel] = r.total, r.lower, r.upper, r.rel_bound
-        exact[sel] = r.exact
-    for members, planar in plan.buckets():
-        sel = np.isin(groups, members)
-        r = grouped_point_sums(
-            plan.x[sel],
-            plan.y[sel],
-            groups[sel],
-            n_groups,
-            _subset(weights, sel),
-            tolerance=planar,
-            method=method,
-            progress=stages.stage(counts[members].sum()),
-        )
+    stages = _run_stages(
+        plan, lon, lat, groups, n_groups, weights, a, f, method, progress,
+        exact_geodesic_point_sums, grouped_point_sums,
+    )  # fmt: skip
+    for _, sel, r, projected in stages:
+        if not projected:
+            total[sel], lower[sel], upper[sel], bound[sel] = r.total, r.lower, r.upper, r.rel_bound
+            exact[sel] = r.exact
+            continue
         codes = groups[sel]
         total[sel], lower[sel], upper[sel], bound[sel] = fold_distortion(
             r.total, r.lower, r.upper, plan.k_min[codes], plan.k_max[codes], _forward_slack(a, r.other_weight)
