@@ -371,7 +371,7 @@ def run_trials(servers, jobs):
 
 def test_sigkill_during_write_never_loses_data(tmp_path, kill_inputs, project, record_property):
     # The design says a GeoPackage output is written into a copy beside the file and renamed
-    # over it in one step (toolbox/layers.py, write_output); POSIX rename() replaces the name
+    # over it in one step (toolbox/layers/write.py, write_output); POSIX rename() replaces the name
     # atomically, so a reader sees the old file or the new one, never a mix.
     input_hashes = {script: sha256(path) for script, path in kill_inputs.items()}
     before = {key: read_all(path) for key, path in project.items()}

@@ -1,0 +1,298 @@
+"""Reading layers: a vector layer to point coordinates plus the attribute columns a script needs."""
+
+from __future__ import annotations
+
+import difflib
+import os
+import sys
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pandas as pd
+import pyogrio
+import shapely
+
+from ..errors import GeometryError, InputError, ParameterError
+
+if TYPE_CHECKING:
+    import geopandas
+
+__all__ = ["ENGINES", "PointLayer", "read_points", "read_layer", "points_of"]
+
+ENGINES = ("pyogrio", "fiona")
+
+_POINT_TYPES = {0: "Point", 4: "MultiPoint"}
+_TYPE_NAMES = {
+    -1: "missing",
+    0: "Point",
+    1: "LineString",
+    2: "LinearRing",
+    3: "Polygon",
+    4: "MultiPoint",
+    5: "MultiLineString",
+    6: "MultiPolygon",
+    7: "GeometryCollection",
+}
+
+
+@dataclass(frozen=True)
+class PointLayer:
+    """Points of a layer and the attributes of the features they belong to.
+
+    ``attributes`` has one row per feature; ``x``, ``y`` and ``feature`` have one entry per point
+    (a MultiPoint feature gives several points sharing its row number in ``feature``).
+    """
+
+    attributes: pd.DataFrame
+    x: np.ndarray
+    y: np.ndarray
+    feature: np.ndarray
+    crs: object  # pyproj.CRS or None
+    label: str
+
+
+def _is_local_path(data) -> bool:
+    text = str(data)
+    return not (text.startswith("/vsi") or "://" in text)
+
+
+def _suggest(name: str, choices: Sequence[str]) -> str:
+    close = difflib.get_close_matches(name, list(choices), n=3, cutoff=0.6)
+    if close:
+        return "did you mean " + " or ".join(repr(c) for c in close) + "?"
+    return "available: " + (", ".join(repr(c) for c in choices) if choices else "none")
+
+
+def _resolve_layer(path: str, layer: str | None) -> str:
+    try:
+        listed = pyogrio.list_layers(path)
+    except Exception as exc:  # pyogrio raises DataSourceError with GDAL's message
+        raise InputError(f"Cannot open {path!r} as a vector dataset: {_first_line(exc)}") from exc
+    names = [str(row[0]) for row in listed]
+    if layer is None:
+        if len(names) == 1:
+            return names[0]
+        raise InputError(f"{path!r} holds {len(names)} layers ({', '.join(names)}); choose one with --layer.")
+    if layer not in names:
+        raise InputError(f"{path!r} has no layer {layer!r}; {_suggest(layer, names)}")
+    return layer
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def _is_frame(data) -> bool:
+    # geopandas loads only when needed (it is slow to import); a GeoDataFrame implies it is loaded
+    geopandas = sys.modules.get("geopandas")
+    return geopandas is not None and isinstance(data, geopandas.GeoDataFrame)
+
+
+def _open(data, layer, engine, where):
+    """Check a path and pick its layer; returns (path, layer name, label, field names)."""
+    if engine not in ENGINES:
+        raise ParameterError(f"engine must be one of {', '.join(ENGINES)}. Got {engine!r} instead.")
+    path = os.fspath(data)
+    if _is_local_path(path) and not Path(path).exists():
+        raise InputError(f"Input {path!r} does not exist; check the path.")
+    name = _resolve_layer(path, layer)
+    label = f"layer {name!r} of {path!r}"
+    info = pyogrio.read_info(path, layer=name)
+    return path, name, label, [str(f) for f in info["fields"]]
+
+
+def _warn_if_nothing_matched(rows: int, where, label):
+    if where and rows == 0:
+        warnings.warn(
+            f"No feature of {label} matched the --where filter {where!r}.", UserWarning, stacklevel=3
+        )
+
+
+def _reading_failed(exc, label, where, engine):
+    if isinstance(exc, ImportError):
+        return InputError(f"The {engine} engine is not installed: {exc}")
+    hint = " (check the --where filter)" if where else ""
+    return InputError(f"Reading {label} failed{hint}: {_first_line(exc)}")
+
+
+def read_points(
+    data,
+    *,
+    layer: str | None = None,
+    fields: Sequence[str] = (),
+    where: str | None = None,
+    engine: str = "pyogrio",
+) -> PointLayer:
+    """Read the points of a layer and the named attribute fields (only those).
+
+    Parameters
+    ----------
+    data : str, os.PathLike or geopandas.GeoDataFrame
+        Any vector dataset OGR reads, or a GeoDataFrame already in memory.
+    layer : str, optional
+        Layer name; required when the dataset holds several layers.
+    fields : sequence of str
+        Attribute fields to keep (each must exist).
+    where : str, optional
+        OGR SQL filter applied by the reader (the user's own filter on the user's own file).
+    engine : {"pyogrio", "fiona"}
+        Reader to use.
+
+    Returns
+    -------
+    PointLayer
+    """
+    fields = list(dict.fromkeys(fields))
+    if _is_frame(data) or engine == "fiona":
+        frame, label = read_layer(data, layer=layer, where=where, engine=engine, columns=fields)
+        return points_of(frame, fields, label)
+    path, name, label, available = _open(data, layer, engine, where)
+    _check_fields(fields, available, label)
+    try:
+        # a filter may name fields that are not read; some drivers then drop every row
+        meta, table = pyogrio.read_arrow(path, layer=name, columns=None if where else fields, where=where)
+    except Exception as exc:
+        raise _reading_failed(exc, label, where, engine) from exc
+    geom_name = meta["geometry_name"] or "wkb_geometry"
+    _warn_if_nothing_matched(table.num_rows, where, label)
+    attributes = table.select(fields).to_pandas()
+    return _points_from_wkb(attributes, table.column(geom_name), meta["crs"], label)
+
+
+def read_layer(
+    data,
+    *,
+    layer: str | None = None,
+    where: str | None = None,
+    engine: str = "pyogrio",
+    columns: Sequence[str] | None = None,
+) -> tuple[geopandas.GeoDataFrame, str]:
+    """Read a whole layer (or the named ``columns``) as a GeoDataFrame, with a label for messages.
+
+    A GeoDataFrame passed in is returned as it is (never modified by any script).
+    """
+    if _is_frame(data):
+        if where:
+            raise ParameterError("A where filter applies to files only; filter the GeoDataFrame first.")
+        if columns is not None:
+            _check_fields(columns, [c for c in data.columns if c != data.geometry.name], "the GeoDataFrame")
+        return data, "the GeoDataFrame"
+    path, name, label, available = _open(data, layer, engine, where)
+    if columns is not None:
+        _check_fields(columns, available, label)
+    try:
+        if engine == "pyogrio":
+            # a filter may name fields that are not read; some drivers then drop every row
+            subset = None if where else columns
+            frame = pyogrio.read_dataframe(path, layer=name, where=where, columns=subset, use_arrow=True)
+        else:  # some fiona drivers cannot skip fields: read them all, keep the named ones after
+            import geopandas
+
+            frame = geopandas.read_file(path, layer=name, where=where, engine="fiona")
+    except Exception as exc:
+        raise _reading_failed(exc, label, where, engine) from exc
+    _warn_if_nothing_matched(len(frame), where, label)
+    if columns is not None:
+        frame = frame[[*columns, frame.geometry.name]]
+    return frame, label
+
+
+def points_of(frame: geopandas.GeoDataFrame, fields: Sequence[str], label: str) -> PointLayer:
+    """The points of a GeoDataFrame and its named attribute fields."""
+    _check_fields(fields, [c for c in frame.columns if c != frame.geometry.name], label)
+    attributes = pd.DataFrame(frame[list(fields)]).reset_index(drop=True)
+    return _points_from_geometry(
+        attributes, np.asarray(frame.geometry.values, dtype=object), frame.crs, label
+    )
+
+
+def _check_fields(fields, available, label):
+    for field in fields:
+        if field not in available:
+            raise InputError(f"{label} has no field {field!r}; {_suggest(field, available)}")
+
+
+def _fixed_points(column) -> tuple[np.ndarray, np.ndarray] | None:
+    """Coordinates straight from an Arrow WKB column when every value is a 2-D point.
+
+    A little-endian 2-D WKB point is a fixed 21-byte record (byte order, type 1, x, y), so the
+    column's data buffer can be read as an array without making a Python object per feature.
+    Anything else (nulls, other types, Z/M, big-endian, POINT EMPTY) returns None.
+    """
+    import pyarrow as pa
+
+    column = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
+    if len(column) == 0 or column.null_count or column.type not in (pa.binary(), pa.large_binary()):
+        return None
+    width = "<i4" if column.type == pa.binary() else "<i8"
+    offsets = np.frombuffer(column.buffers()[1], width)[column.offset : column.offset + len(column) + 1]
+    if not (np.diff(offsets) == 21).all():
+        return None
+    raw = np.frombuffer(column.buffers()[2], np.uint8)[offsets[0] : offsets[-1]].reshape(-1, 21)
+    if not ((raw[:, 0] == 1).all() and (raw[:, 1:5].copy().view("<u4")[:, 0] == 1).all()):
+        return None
+    xy = raw[:, 5:].copy().view("<f8")
+    x, y = xy[:, 0].copy(), xy[:, 1].copy()
+    if (np.isnan(x) & np.isnan(y)).any():  # WKB writes POINT EMPTY as (NaN, NaN)
+        return None
+    return x, y
+
+
+def _points_from_wkb(attributes, column, crs, label) -> PointLayer:
+    fixed = _fixed_points(column)
+    if fixed is not None:
+        x, y = fixed
+        return _finish(attributes, x, y, np.arange(x.size, dtype=np.int64), crs, label)
+    geometry = shapely.from_wkb(column.to_numpy(zero_copy_only=False))
+    return _points_from_geometry(attributes, geometry, crs, label)
+
+
+def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
+    geometry = np.asarray(geometry, dtype=object)
+    types = shapely.get_type_id(geometry)
+    missing = (types < 0) | shapely.is_empty(geometry)
+    if missing.any():
+        raise GeometryError(
+            f"{int(missing.sum())} of {geometry.size} features of {label} have no geometry "
+            "(null or empty); drop them first, e.g. with --where."
+        )
+    wrong = ~np.isin(types, list(_POINT_TYPES))
+    if wrong.any():
+        kinds, counts = np.unique(types[wrong], return_counts=True)
+        listed = ", ".join(
+            f"{c} {_TYPE_NAMES.get(int(k), str(k))}" for k, c in zip(kinds, counts, strict=True)
+        )
+        raise GeometryError(
+            f"{label} has {int(wrong.sum())} feature(s) that are not points ({listed}); "
+            "this script needs Point or MultiPoint features."
+        )
+    if shapely.has_z(geometry).any():
+        warnings.warn(
+            f"{label} has Z coordinates; they are ignored (distances are measured in x and y).",
+            UserWarning,
+            stacklevel=4,
+        )
+    coords, feature = shapely.get_coordinates(geometry, return_index=True)
+    return _finish(attributes, coords[:, 0].copy(), coords[:, 1].copy(), feature, crs, label)
+
+
+def _finish(attributes, x, y, feature, crs, label) -> PointLayer:
+    bad = ~(np.isfinite(x) & np.isfinite(y))
+    if bad.any():
+        rows = np.unique(feature[bad])
+        shown = ", ".join(str(int(r)) for r in rows[:5])
+        raise GeometryError(
+            f"{rows.size} feature(s) of {label} have NaN or infinite coordinates (rows {shown}"
+            f"{', ...' if rows.size > 5 else ''}); repair or drop them first."
+        )
+    if crs is not None and not hasattr(crs, "to_wkt"):
+        import pyproj
+
+        crs = pyproj.CRS.from_user_input(crs)
+    return PointLayer(attributes, x, y, np.asarray(feature, dtype=np.int64), crs, label)
+

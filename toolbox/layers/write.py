@@ -1,0 +1,284 @@
+"""Writing results: a table or layer on disk without ever leaving a half-written file or
+touching layers that were already there."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import sys
+import tempfile
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+
+import pandas as pd
+import pyogrio
+
+from ..errors import OutputError, ParameterError
+from .read import _first_line, _is_frame
+
+__all__ = ["TABLE_FORMATS", "LAYER_FORMATS", "output_format", "shapefile_names", "check_output", "write_output"]
+
+#: output formats by suffix, for attribute tables and for layers (geometry kept)
+TABLE_FORMATS = {".gpkg": "gpkg", ".csv": "csv", ".parquet": "parquet"}
+LAYER_FORMATS = {".gpkg": "gpkg", ".shp": "shp", ".geojson": "geojson", ".parquet": "parquet"}
+_SHAPEFILE_PARTS = (".shp", ".shx", ".dbf", ".prj", ".cpg")
+
+
+def output_format(path: str, what: str = "table") -> str:
+    """Format name of an output path: the suffix decides; ``-`` is CSV on standard output."""
+    formats = TABLE_FORMATS if what == "table" else LAYER_FORMATS
+    if path == "-" and what == "table":
+        return "stdout"
+    suffix = Path(path).suffix.lower()
+    if suffix not in formats:
+        also = " or use '-' for CSV on standard output" if what == "table" else ""
+        raise OutputError(
+            f"Cannot tell the output format of {path!r}; end it with {', '.join(formats)}{also}."
+        )
+    return formats[suffix]
+
+
+def _check_folder(path: Path):
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        raise OutputError(f"The output folder {str(folder)!r} does not exist; create it first.")
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise OutputError(f"The output folder {str(folder)!r} is not writable; choose another output.")
+
+
+def _gpkg_layers(path: Path) -> list[str]:
+    with open(path, "rb") as handle:  # a GeoPackage is an SQLite file, whatever its name
+        header = handle.read(16)
+    if header != b"SQLite format 3\x00":
+        raise OutputError(
+            f"The existing file {str(path)!r} cannot be opened as a GeoPackage (it is not an "
+            "SQLite file); it was left untouched. Choose another output."
+        )
+    for sidecar in ("-wal", "-journal"):
+        if Path(str(path) + sidecar).exists():
+            raise OutputError(
+                f"{str(path)!r} seems to be open in another program ({path.name}{sidecar} exists); "
+                "close it and try again."
+            )
+    try:
+        return [str(row[0]) for row in pyogrio.list_layers(path)]
+    except Exception as exc:
+        raise OutputError(
+            f"The existing file {str(path)!r} cannot be opened as a GeoPackage "
+            f"({_first_line(exc)}); it was left untouched. Choose another output."
+        ) from exc
+
+
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _shorten(name: str, limit: int = 10) -> str:
+    """``name`` cut to at most ``limit`` bytes of UTF-8, never inside a character."""
+    cut = name.encode("utf-8")[:limit]
+    return cut.decode("utf-8", errors="ignore")
+
+
+def shapefile_names(fields: Sequence[str]) -> dict[str, str]:
+    """Field names as a Shapefile will hold them (10 bytes), refusing any that would collide."""
+    names: dict[str, str] = {}
+    taken: dict[str, str] = {}
+    for name in fields:
+        short = _shorten(name)
+        if short.lower() in taken:
+            raise OutputError(
+                f"Fields {taken[short.lower()]!r} and {name!r} would both become {short!r} in a "
+                "Shapefile (10-character field names); rename one or write a "
+                "GeoPackage instead."
+            )
+        taken[short.lower()] = name
+        names[name] = short
+    return names
+
+
+def _shapefile_parts(target: Path) -> list[Path]:
+    return [target.with_suffix(suffix) for suffix in _SHAPEFILE_PARTS]
+
+
+def check_output(
+    path: str,
+    *,
+    what: str = "table",
+    layer_name: str = "",
+    overwrite: bool = False,
+    inputs=(),
+    fields: Sequence[str] = (),
+) -> None:
+    """Refuse, before any work is done, an output that cannot or must not be written.
+
+    Parameters
+    ----------
+    path : str
+        Output path; its suffix picks the format (see ``TABLE_FORMATS`` and ``LAYER_FORMATS``).
+    what : {"table", "layer"}
+        An attribute table, or a layer with geometry.
+    layer_name : str
+        Table or layer name inside a GeoPackage.
+    overwrite : bool
+        Whether an existing table, layer or file may be replaced.
+    inputs : sequence of (path, layer) pairs
+        Layers being read, which are never replaced.
+    fields : sequence of str
+        Field names of a layer output, checked against Shapefile's 10-character limit.
+    """
+    kind = output_format(path, what)
+    if kind == "stdout":
+        return
+    target = Path(path)
+    _check_folder(target)
+    if target.is_dir():
+        raise OutputError(f"The output {path!r} is a folder; name a file.")
+    for in_path, in_layer in inputs:
+        same = target.exists() and Path(in_path).exists() and os.path.samefile(in_path, target)
+        if same and kind == "gpkg" and in_layer is None:
+            names = _gpkg_layers(target)  # the layer that will be read is the only one
+            in_layer = names[0] if len(names) == 1 else None
+        if same and (kind != "gpkg" or in_layer == layer_name):
+            raise OutputError(
+                f"The output {path!r} would replace the input; choose another "
+                f"{'--output-layer' if kind == 'gpkg' else '--output'}."
+            )
+    if kind == "gpkg":
+        if not layer_name:
+            raise ParameterError("The output layer name must not be empty.")
+        if target.exists():
+            names = [n.lower() for n in _gpkg_layers(target)]  # GeoPackage names ignore case
+            if layer_name.lower() in names and not overwrite:
+                raise OutputError(
+                    f"{path!r} already has a layer {layer_name!r}; pass --overwrite to replace it "
+                    "or choose another --output-layer."
+                )
+        return
+    if kind == "shp":
+        shapefile_names(fields)  # refuses names that would collide once shortened
+        existing = [p for p in _shapefile_parts(target) if p.exists()]
+        if existing and not overwrite:
+            raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
+        return
+    if target.exists() and not overwrite:
+        raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
+
+
+def _check_written(tmp: Path, kind: str, rows: int, columns: int, layer_name: str, path: str) -> None:
+    """Read back what was written: some writers ignore a failed write (a full disk) on close."""
+    if kind in ("csv", "parquet"):
+        return
+    try:
+        info = pyogrio.read_info(tmp, layer=layer_name if kind == "gpkg" else None)
+    except Exception as exc:
+        raise OutputError(
+            f"The output could not be read back ({_first_line(exc)}); nothing was written."
+        ) from exc
+    if info["features"] != rows or len(info["fields"]) != columns:
+        raise OutputError(
+            f"Writing {path!r} failed: only part of it could be written ({info['features']} of {rows} rows, "
+            f"{len(info['fields'])} of {columns} fields read back; is the disk full or a "
+            "file-size limit set?); nothing was written."
+        )
+
+
+def _move_into_place(parts: list[Path], folder: Path, scratch: Path) -> None:
+    """Rename the new files over the old ones; if one rename fails, put the old ones back."""
+    backups: list[tuple[Path, Path]] = []
+    moved: list[Path] = []
+    try:
+        for part in parts:
+            final = folder / part.name
+            if final.exists():
+                shutil.copymode(final, part)
+                keep = scratch / (part.name + ".previous")
+                # a second name for the old file, so the output's path is never empty: the
+                # rename below replaces it in one step, and a failure can put it back
+                try:
+                    os.link(final, keep)
+                except OSError:
+                    shutil.copy2(final, keep)
+                backups.append((keep, final))
+            else:
+                os.chmod(part, 0o666 & ~_umask())
+            os.replace(part, final)
+            moved.append(final)
+    except BaseException:
+        for final in moved:
+            if not any(final == f for _, f in backups):
+                final.unlink(missing_ok=True)
+        for keep, final in backups:
+            os.replace(keep, final)
+        raise
+
+
+def write_output(
+    frame: pd.DataFrame,
+    path: str,
+    *,
+    what: str = "table",
+    layer_name: str = "",
+    overwrite: bool = False,
+) -> str:
+    """Write a table or layer atomically; returns a description of where it went.
+
+    A GeoPackage output gets the table or layer and keeps every other layer it had: it is
+    written into a copy beside the file, which then replaces it in one rename. Other formats
+    are written under a temporary name (a Shapefile's parts in a temporary folder) and renamed.
+    A failure leaves no partial output and the previous file as it was.
+    """
+    geometry_name = frame.geometry.name if _is_frame(frame) else None
+    fields = [c for c in frame.columns if c != geometry_name]
+    check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields)
+    kind = output_format(path, what)
+    if kind == "stdout":
+        frame.to_csv(sys.stdout, index=False)
+        sys.stdout.flush()
+        return "standard output"
+    target = Path(path)
+    scratch = None
+    try:
+        scratch = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent))
+        tmp = scratch / target.name
+        if kind == "gpkg":
+            if target.exists():
+                shutil.copyfile(target, tmp)
+                shutil.copymode(target, tmp)
+            pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG")
+        elif kind == "csv":
+            frame.to_csv(tmp, index=False)
+        elif kind == "parquet":
+            frame.to_parquet(tmp, index=False)
+        elif kind == "geojson":
+            pyogrio.write_dataframe(frame, tmp, driver="GeoJSON")
+        else:  # names are shortened here, at a character boundary, rather than by GDAL
+            renamed = {k: v for k, v in shapefile_names(fields).items() if k != v}
+            if renamed:
+                warnings.warn(
+                    "Shapefile field names are at most 10 characters: "
+                    + ", ".join(f"{k} → {v}" for k, v in renamed.items()),
+                    UserWarning,
+                    stacklevel=2,
+                )
+            out = frame.rename(columns=renamed)
+            pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
+        _check_written(tmp, kind, len(frame), len(fields), layer_name, path)
+        produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
+        _move_into_place(produced, target.parent, scratch)
+    except BaseException as exc:
+        if isinstance(exc, (OutputError, KeyboardInterrupt, SystemExit)):
+            raise
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else _first_line(exc)
+        raise OutputError(
+            f"Writing {path!r} failed: {reason}; nothing was written. If the disk is full or a "
+            "file-size limit applies (ulimit -f), free space or raise the limit and run again."
+        ) from exc
+    finally:
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
+    if kind == "gpkg":
+        return f"{'table' if what == 'table' else 'layer'} {layer_name!r} in {path}"
+    return str(path)
