@@ -132,14 +132,16 @@ def read_points(
 
     Parameters
     ----------
-    data : str, os.PathLike or geopandas.GeoDataFrame
-        Any vector dataset OGR reads, or a GeoDataFrame already in memory.
+    data : str, os.PathLike, geopandas.GeoDataFrame or ArrowLayer
+        Any vector dataset OGR reads; GeoParquet (a file, a folder of files or a glob, read
+        through pyarrow); a GeoDataFrame or a layer already in memory.
     layer : str, optional
         Layer name; required when the dataset holds several layers.
     fields : sequence of str
         Attribute fields to keep (each must exist).
     where : str, optional
-        OGR SQL filter applied by the reader (the user's own filter on the user's own file).
+        SQL filter applied by the reader (OGR's for OGR formats; for GeoParquet and Arrow
+        layers the subset that :func:`toolbox.layers.where.parse_where` reads).
     engine : {"pyogrio", "fiona"}
         Reader to use.
 
@@ -148,6 +150,9 @@ def read_points(
     PointLayer
     """
     fields = list(dict.fromkeys(fields))
+    arrow = _arrow_layer(data, layer)
+    if arrow is not None:
+        return arrow.points(fields, where)
     if _is_frame(data) or engine == "fiona":
         frame, label = read_layer(data, layer=layer, where=where, engine=engine, columns=fields)
         return points_of(frame, fields, label)
@@ -176,11 +181,17 @@ def read_layer(
 
     A GeoDataFrame passed in is returned as it is (never modified by any script).
     """
+    arrow = _arrow_layer(data, layer)
+    if arrow is not None:
+        return arrow.frame(None if columns is None else list(columns), where), arrow.label
     if _is_frame(data):
-        if where:
-            raise ParameterError("A where filter applies to files only; filter the GeoDataFrame first.")
         if columns is not None:
             _check_fields(columns, [c for c in data.columns if c != data.geometry.name], "the GeoDataFrame")
+        if where:  # the same filter language as for GeoParquet; the caller's frame is not modified
+            from .where import filter_frame
+
+            data = filter_frame(data, where, "the GeoDataFrame")
+            _warn_if_nothing_matched(len(data), where, "the GeoDataFrame")
         return data, "the GeoDataFrame"
     path, name, label, available = _open(data, layer, engine, where)
     if columns is not None:
@@ -200,6 +211,23 @@ def read_layer(
     if columns is not None:
         frame = frame[[*columns, frame.geometry.name]]
     return frame, label
+
+
+def _arrow_layer(data, layer):
+    """The :class:`~toolbox.layers.parquet.ArrowLayer` of GeoParquet or an Arrow layer, else None.
+
+    GeoParquet goes through pyarrow whatever the GDAL build supports (the one bundled with
+    pyogrio has no Parquet driver).
+    """
+    from . import parquet
+
+    if isinstance(data, parquet.ArrowLayer):
+        if layer is not None:
+            raise InputError(f"{data.label} holds one layer; leave out the layer name.")
+        return data
+    if parquet.is_parquet(data):
+        return parquet.open_parquet(data, layer)
+    return None
 
 
 def points_of(frame: geopandas.GeoDataFrame, fields: Sequence[str], label: str) -> PointLayer:

@@ -1,0 +1,195 @@
+"""GeoParquet read through pyarrow: files, partitioned folders and globs, WKB and GeoArrow.
+
+The reference reader is ``geopandas.read_parquet`` (geopandas' own implementation of the
+GeoParquet specification); group sums are checked against brute force with
+``scipy.spatial.distance.pdist`` (``reference_table`` in conftest.py).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import shapely
+
+from toolbox import layers
+from toolbox.cli import main
+from toolbox.errors import GeometryError, InputError, ParameterError
+from toolbox.layers import parquet
+
+
+@pytest.fixture
+def run_main(capsys):
+    def run(*args):
+        code = main([str(a) for a in args])
+        captured = capsys.readouterr()
+        return code, captured.out, captured.err
+
+    return run
+
+
+def _partitioned(homes: gpd.GeoDataFrame, folder) -> None:
+    """One file per zone in Hive-style ``zone=<value>`` folders (NULL zones left out)."""
+    for zone, part in homes.groupby("zone"):
+        (folder / f"zone={zone}").mkdir(parents=True)
+        part.drop(columns="zone").to_parquet(folder / f"zone={zone}" / "part-0.parquet")
+
+
+def _same_layer(ours: gpd.GeoDataFrame, theirs: gpd.GeoDataFrame) -> None:
+    assert list(ours.columns) == list(theirs.columns)
+    assert ours.geometry.name == theirs.geometry.name
+    assert ours.crs == theirs.crs
+    assert ours.index.equals(theirs.index)
+    assert ours.geometry.geom_equals_exact(theirs.geometry, tolerance=0).all()
+    for column in ours.columns.drop(ours.geometry.name):
+        assert [str(v) for v in ours[column]] == [str(v) for v in theirs[column]], column
+
+
+@pytest.mark.parametrize("encoding", ["WKB", "geoarrow"])
+def test_file_matches_geopandas(tmp_path, homes, encoding):
+    path = tmp_path / "homes.parquet"
+    homes.to_parquet(path, geometry_encoding=encoding)
+    frame, label = layers.read_layer(path)
+    _same_layer(frame, gpd.read_parquet(path))
+    assert label == f"GeoParquet {str(path)!r}"
+    points = layers.read_points(path, fields=["zone", "pop"])
+    expected = shapely.get_coordinates(gpd.read_parquet(path).geometry.values)
+    np.testing.assert_array_equal(np.column_stack([points.x, points.y]), expected)
+    assert points.crs == homes.crs
+    assert points.attributes["pop"].tolist() == homes["pop"].tolist()
+
+
+@pytest.mark.parametrize("spelling", ["folder", "folder/", "glob"])
+def test_partitioned_folder_matches_geopandas(tmp_path, homes, spelling):
+    folder = tmp_path / "homes"
+    _partitioned(homes, folder)
+    name = {"folder": str(folder), "folder/": f"{folder}/", "glob": f"{folder}/*/*.parquet"}[spelling]
+    frame, _ = layers.read_layer(name)
+    _same_layer(frame, gpd.read_parquet(folder))
+    points = layers.read_points(name, fields=["zone"])
+    assert sorted(set(points.attributes["zone"])) == sorted(homes["zone"].dropna().unique())
+
+
+def test_group_spread_on_a_folder_matches_pdist(run_main, tmp_path, homes, reference, by_key):
+    folder = tmp_path / "homes"
+    _partitioned(homes, folder)
+    code, out, err = run_main(
+        "group-spread", folder, "--group-by", "zone", "--weight", "pop", "--tolerance", "0", "--output", "-"
+    )
+    assert code == 0, err
+    table = pd.read_csv(io.StringIO(out))
+    expected = reference(homes[homes["zone"].notna()], ["zone"], "pop")
+    rows = by_key(table, ["zone"])
+    assert set(rows) == set(expected)
+    for key, ref in expected.items():
+        assert rows[key]["n_points"] == ref["n_points"]
+        np.testing.assert_allclose(rows[key]["total_dist"], ref["total_dist"], rtol=1e-9)
+
+
+def test_where_on_parquet_keeps_the_same_rows_as_ogr(run_main, tmp_path, homes, homes_gpkg, same_table):
+    path = tmp_path / "homes.parquet"
+    homes.to_parquet(path)
+    where = "tenure = 'rented' AND pop BETWEEN 2 AND 6 AND zone IS NOT NULL"
+    args = ("--group-by", "zone", "--tolerance", "0", "--where", where, "--output", "-")
+    code_p, out_p, err_p = run_main("group-spread", path, *args)
+    code_g, out_g, err_g = run_main("group-spread", *homes_gpkg.args, *args)
+    assert code_p == code_g == 0, err_p + err_g
+    same_table(pd.read_csv(io.StringIO(out_p)), pd.read_csv(io.StringIO(out_g)), rtol=1e-12)
+
+
+def test_batches_cover_the_layer_with_only_the_needed_columns(tmp_path, homes):
+    path = tmp_path / "homes.parquet"
+    homes.to_parquet(path, row_group_size=50)
+    layer = parquet.open_parquet(path)
+    batches = list(layer.batches(["zone"], where="pop > 0", batch_rows=40))
+    assert max(b.num_rows for b in batches) <= 40
+    assert all(b.schema.names == ["zone", "geometry"] for b in batches)
+    xs = np.concatenate([parquet.points_of_table(b, layer, ["zone"]).x for b in batches])
+    np.testing.assert_array_equal(xs, homes.geometry.x[homes["pop"] > 0].to_numpy())
+
+
+def test_geoarrow_multipoints_count_each_point(tmp_path):
+    frame = gpd.GeoDataFrame(
+        {"g": ["a", "b"]},
+        geometry=[shapely.MultiPoint([(0, 0), (3, 0)]), shapely.MultiPoint([(0, 0), (0, 4), (1, 1)])],
+        crs="EPSG:32705",
+    )
+    path = tmp_path / "multi.parquet"
+    frame.to_parquet(path, geometry_encoding="geoarrow")
+    assert parquet.open_parquet(path).geometry.encoding == "multipoint"
+    points = layers.read_points(path, fields=["g"])
+    assert points.feature.tolist() == [0, 0, 1, 1, 1]
+    assert points.y.tolist() == [0, 0, 0, 4, 1]
+
+
+def test_crs_from_the_metadata(tmp_path, homes):
+    """GeoParquet 1.1 specification: a missing ``crs`` key means OGC:CRS84, ``null`` means unknown."""
+    table = pa.table({"id": [1, 2], "geometry": shapely.to_wkb(shapely.points([0, 1], [0, 1]))})
+    for crs, expected in (("absent", "OGC:CRS84"), (None, None)):
+        column = {"encoding": "WKB", "geometry_types": ["Point"]}
+        if crs != "absent":
+            column["crs"] = crs
+        geo = {"version": "1.1.0", "primary_column": "geometry", "columns": {"geometry": column}}
+        path = tmp_path / f"crs_{crs}.parquet"
+        pq.write_table(table.replace_schema_metadata({"geo": json.dumps(geo)}), path)
+        points = layers.read_points(path)
+        assert (points.crs is None) if expected is None else points.crs.to_string() == expected
+
+
+def test_partitions_that_disagree_give_one_message(tmp_path, homes):
+    folder = tmp_path / "years"
+    folder.mkdir()
+    homes.iloc[:10].to_parquet(folder / "a.parquet")
+    homes.iloc[10:20].to_crs("EPSG:4326").to_parquet(folder / "b.parquet")
+    with pytest.raises(InputError, match=r"do not agree: .*b\.parquet' has CRS EPSG:4326 against EPSG:32705"):
+        layers.read_points(folder)
+    (folder / "b.parquet").unlink()
+    retyped = homes.iloc[10:20].astype({"pop": float})
+    retyped.to_parquet(folder / "b.parquet")
+    with pytest.raises(InputError, match=r"field 'pop' as double against int64"):
+        layers.read_layer(folder)
+
+
+def test_bad_inputs_are_named(tmp_path, homes):
+    plain = tmp_path / "plain.parquet"
+    pq.write_table(pa.table({"x": [1.0]}), plain)
+    with pytest.raises(InputError, match="no geometry column"):
+        layers.read_points(plain)
+    zones = tmp_path / "zones.parquet"
+    gpd.GeoDataFrame(geometry=[shapely.box(0, 0, 1, 1)], crs="EPSG:32705").to_parquet(zones)
+    with pytest.raises(GeometryError, match="not points .*1 Polygon"):
+        layers.read_points(zones)
+    with pytest.raises(InputError, match="matches no .parquet file"):
+        layers.read_points(tmp_path / "nothing" / "*.parquet")
+    with pytest.raises(InputError, match="holds one layer"):
+        layers.read_points(zones, layer="districts")
+    with pytest.raises(ParameterError, match="names field 'popp'.*did you mean 'pop'"):
+        homes.to_parquet(tmp_path / "homes.parquet")
+        layers.read_points(tmp_path / "homes.parquet", where="popp > 1")
+
+
+def test_point_remoteness_output_reads_back(run_main, tmp_path, homes_gpkg):
+    """The pack reads its own GeoParquet output (the bundled GDAL cannot)."""
+    out = tmp_path / "remote.parquet"
+    code, _, err = run_main(
+        "point-remoteness", *homes_gpkg.args, "--group-by", "zone", "--output", out, "--quiet"
+    )
+    assert code == 0, err
+    code, printed, err = run_main("group-spread", out, "--where", "remote_idx > 1.5", "--group-by", "zone")
+    assert code == 0, err
+    expected = gpd.read_parquet(out).query("remote_idx > 1.5")
+    assert str(len(expected[expected["zone"] == "harbour"])) in printed
+
+
+def test_geodataframe_where_filters_in_memory(homes):
+    before = homes.copy()
+    kept, _ = layers.read_layer(homes, where="zone = 'ridge' OR pop >= 8")
+    expected = homes[(homes["zone"] == "ridge") | (homes["pop"] >= 8)]
+    assert kept.index.tolist() == expected.index.tolist()
+    assert homes.equals(before)  # the caller's frame is not modified
