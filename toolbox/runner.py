@@ -12,6 +12,7 @@ import sys
 from typing import Any
 
 from . import layers
+from .errors import ParameterError
 from .kernels import thread_limit
 from .manifest import Script, get_script, validate
 
@@ -50,18 +51,49 @@ def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
     return found
 
 
-def run_script(script: Script, values: dict[str, Any], *, cli: bool = False) -> tuple[Any, str | None]:
-    """Run ``script`` with raw parameter values; returns the result and where it was written."""
+def _is_dash(value: Any) -> bool:
+    return isinstance(value, str) and value == "-"
+
+
+def _read_piped(script: Script, values: dict[str, Any]) -> dict[str, Any]:
+    """Input layers given as ``-`` read from standard input, once, into memory."""
+    piped = [p for p in script.params if p.kind.endswith("dataset") and _is_dash(values.get(p.name))]
+    chosen = values.get("input_format")
+    if len(piped) > 1:
+        raise ParameterError(
+            f"{' and '.join(p.option if p.kind != 'dataset' else 'INPUT' for p in piped)} are both '-'; "
+            "only one input can come from standard input."
+        )
+    if not piped:
+        if chosen is not None:
+            raise ParameterError("--input-format applies to an input given as '-' (standard input) only.")
+        return values
+    return {**values, piped[0].name: layers.read_stdin(chosen)}
+
+
+def run_script(
+    script: Script, values: dict[str, Any], *, cli: bool = False, made_in: dict | None = None
+) -> tuple[Any, str | None]:
+    """Run ``script`` with raw parameter values; returns the result and where it was written.
+
+    ``made_in`` (a chain's file and step) is recorded with the output's provenance.
+    """
     values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
     target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
     output = values.get(target.name) if target else None
     what = "layer" if target is not None and target.kind == "output-layer" else "table"
     where = dict(
-        what=what, layer_name=values.get("output_layer") or "", overwrite=bool(values.get("overwrite"))
+        what=what,
+        layer_name=values.get("output_layer") or "",
+        overwrite=bool(values.get("overwrite")),
+        stdout_as=values.get("output_format"),
     )
     if output is not None:
         layers.check_output(output, inputs=_inputs(values), **where)
+    elif values.get("output_format") is not None:
+        raise ParameterError("--output-format applies to '--output -' (standard output) only.")
+    values = _read_piped(script, values)
     function = script.load()
     call = {k: v for k, v in values.items() if k not in runner_params}
     bar = _ProgressBar(script.name, bool(values.get("quiet", True)))

@@ -4,6 +4,7 @@ reads GeoParquet and Arrow (through pyarrow).
 ``read`` turns a vector layer into point coordinates plus the attribute columns a script needs;
 ``parquet`` reads GeoParquet files, folders and globs, whole or in record batches, and layers
 held as Arrow tables; ``where`` turns a SQL ``WHERE`` text into an Arrow filter for them;
+``pipe`` reads a layer from standard input and writes to standard output;
 ``write`` puts a result table or layer on disk without ever leaving a half-written file or
 touching layers that were already there.
 """
@@ -30,6 +31,8 @@ __all__ = [
     "points_of_table",
     "parse_where",
     "filter_frame",
+    "read_stdin",
+    "layer_from_bytes",
 ]
 
 # pyarrow.dataset takes a while to import: load the Arrow readers on first use only
@@ -41,6 +44,8 @@ _LAZY = {
     "points_of_table": "parquet",
     "parse_where": "where",
     "filter_frame": "where",
+    "read_stdin": "pipe",
+    "layer_from_bytes": "pipe",
 }
 
 

@@ -139,6 +139,9 @@ class ArrowLayer:
     geometry: GeometryColumn
     label: str
 
+    def __str__(self) -> str:  # messages and provenance records name the layer, not its data
+        return self.label
+
     @property
     def crs(self):
         return self.geometry.crs

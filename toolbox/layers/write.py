@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import os
 import shutil
-import sys
 import tempfile
 import warnings
 from collections.abc import Sequence
@@ -17,7 +16,15 @@ import pyogrio
 from ..errors import OutputError, ParameterError
 from .read import _first_line, _is_frame
 
-__all__ = ["TABLE_FORMATS", "LAYER_FORMATS", "output_format", "shapefile_names", "check_output", "write_output"]
+__all__ = [
+    "TABLE_FORMATS",
+    "LAYER_FORMATS",
+    "output_format",
+    "stdout_format",
+    "shapefile_names",
+    "check_output",
+    "write_output",
+]
 
 #: output formats by suffix, for attribute tables and for layers (geometry kept)
 TABLE_FORMATS = {".gpkg": "gpkg", ".csv": "csv", ".parquet": "parquet"}
@@ -26,17 +33,28 @@ _SHAPEFILE_PARTS = (".shp", ".shx", ".dbf", ".prj", ".cpg")
 
 
 def output_format(path: str, what: str = "table") -> str:
-    """Format name of an output path: the suffix decides; ``-`` is CSV on standard output."""
+    """Format name of an output path: the suffix decides; ``-`` is standard output."""
     formats = TABLE_FORMATS if what == "table" else LAYER_FORMATS
-    if path == "-" and what == "table":
+    if path == "-":
         return "stdout"
     suffix = Path(path).suffix.lower()
     if suffix not in formats:
-        also = " or use '-' for CSV on standard output" if what == "table" else ""
         raise OutputError(
-            f"Cannot tell the output format of {path!r}; end it with {', '.join(formats)}{also}."
+            f"Cannot tell the output format of {path!r}; end it with {', '.join(formats)} "
+            "or use '-' for standard output."
         )
     return formats[suffix]
+
+
+def stdout_format(what: str = "table", chosen: str | None = None) -> str:
+    """What ``-`` writes: ``chosen`` (``--output-format``), else CSV for a table, GeoJSON for a layer."""
+    from .pipe import STDOUT_FORMATS
+
+    if chosen is not None and chosen not in STDOUT_FORMATS:
+        raise ParameterError(
+            f"The --output-format parameter must be one of {', '.join(STDOUT_FORMATS)}. Got {chosen!r} instead."
+        )
+    return chosen or ("csv" if what == "table" else "geojson")
 
 
 def _check_folder(path: Path):
@@ -111,6 +129,7 @@ def check_output(
     overwrite: bool = False,
     inputs=(),
     fields: Sequence[str] = (),
+    stdout_as: str | None = None,
 ) -> None:
     """Refuse, before any work is done, an output that cannot or must not be written.
 
@@ -128,10 +147,19 @@ def check_output(
         Layers being read, which are never replaced.
     fields : sequence of str
         Field names of a layer output, checked against Shapefile's 10-character limit.
+    stdout_as : {"csv", "geojson", "geoparquet"}, optional
+        Format written when ``path`` is ``-`` (``--output-format``); a file's suffix decides
+        its own format, so naming one for a file is refused.
     """
     kind = output_format(path, what)
     if kind == "stdout":
+        stdout_format(what, stdout_as)
         return
+    if stdout_as is not None:
+        raise ParameterError(
+            f"--output-format chooses the format of '--output -' only; the suffix of {path!r} "
+            "chooses its format. Leave out --output-format or write to '-'."
+        )
     target = Path(path)
     _check_folder(target)
     if target.is_dir():
@@ -222,6 +250,7 @@ def write_output(
     what: str = "table",
     layer_name: str = "",
     overwrite: bool = False,
+    stdout_as: str | None = None,
 ) -> str:
     """Write a table or layer atomically; returns a description of where it went.
 
@@ -232,11 +261,12 @@ def write_output(
     """
     geometry_name = frame.geometry.name if _is_frame(frame) else None
     fields = [c for c in frame.columns if c != geometry_name]
-    check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields)
+    check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields, stdout_as=stdout_as)
     kind = output_format(path, what)
     if kind == "stdout":
-        frame.to_csv(sys.stdout, index=False)
-        sys.stdout.flush()
+        from .pipe import write_stdout
+
+        write_stdout(frame, stdout_format(what, stdout_as), layer_name)
         return "standard output"
     target = Path(path)
     scratch = None
