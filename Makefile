@@ -30,6 +30,7 @@ lint: $(STAMP)
 
 docs: $(STAMP)
 	$(BIN)/python -m toolbox.docgen docs/scripts.md
+	$(BIN)/python -c "import toolbox.chain as c; c.main(['schema', 'docs/chain.schema.json'])"
 
 bench: $(STAMP)
 	$(BIN)/python bench/bench_suite.py

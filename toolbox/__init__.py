@@ -10,6 +10,7 @@ from __future__ import annotations
 __version__ = "0.1.0"
 
 from .api import script_function as _script_function
+from .chain import run_chain
 from .errors import (
     GeometryError,
     InputError,
@@ -42,10 +43,13 @@ from .runner import run
 group_spread = _script_function("group-spread")
 point_remoteness = _script_function("point-remoteness")
 cross_spread = _script_function("cross-spread")
+keep_rows = _script_function("keep-rows")
 
 __all__ = [
     "__version__",
     "run",
+    "run_chain",
+    "keep_rows",
     "group_spread",
     "point_remoteness",
     "cross_spread",

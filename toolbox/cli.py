@@ -59,6 +59,22 @@ def build_parser() -> argparse.ArgumentParser:
     describe = sub.add_parser("describe", help="Show a script's parameters.")
     describe.add_argument("script", metavar="SCRIPT")
     describe.add_argument("--json", action="store_true", help="Print the description as JSON.")
+    chain = sub.add_parser("chain", help="Run a chain file: several scripts declared once (docs/chains.md).")
+    chain.add_argument("file", metavar="FILE", help="The chain file (TOML).")
+    chain.add_argument(
+        "--set",
+        dest="sets",
+        action="append",
+        default=[],
+        metavar="STEP.PARAM=VALUE",
+        help="Replace or add a step's parameter (repeatable); paths are relative to the current folder.",
+    )
+    chain.add_argument(
+        "--dry-run", action="store_true", help="Check the chain and print the plan; run nothing."
+    )
+    chain.add_argument("--overwrite", action="store_true", help="Let every output replace an existing one.")
+    chain.add_argument("--quiet", action="store_true", help="No progress bars and no messages on success.")
+    chain.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
     for script in scripts().values():
         sp = sub.add_parser(script.name, help=script.summary, description=script.summary)
         for p in script.params:
@@ -112,6 +128,10 @@ def _run(argv: list[str]) -> int:
         script = get_script(args.script)
         print(json.dumps(script.describe(), indent=2) if args.json else _describe_text(script))
         return 0
+    if args.command == "chain":
+        from .chain import command
+
+        return command(args, print_table=_print_table)
     script = get_script(args.command)
     values = {p.name: getattr(args, p.name) for p in script.params}
     values = {k: v for k, v in values.items() if v is not None}
