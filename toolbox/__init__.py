@@ -44,6 +44,7 @@ group_spread = _script_function("group-spread")
 point_remoteness = _script_function("point-remoteness")
 cross_spread = _script_function("cross-spread")
 keep_rows = _script_function("keep-rows")
+spread_contrast = _script_function("spread-contrast")
 
 __all__ = [
     "__version__",
@@ -53,6 +54,7 @@ __all__ = [
     "group_spread",
     "point_remoteness",
     "cross_spread",
+    "spread_contrast",
     "grouped_point_sums",
     "cross_pair_sums",
     "PointSums",

@@ -1,0 +1,120 @@
+"""``spread-contrast``: are the samples laid out differently? Energy distance and DISCO tests."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+
+from .. import geodesy, grouping, layers
+from ..errors import InputError, ParameterError
+from ..kernels.energy import check_permutations, energy_test, holm_adjust
+
+_SAMPLE = "__sample__"
+
+
+def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine):
+    """Read → distance set-up → test groups → weights: points, per-feature sample values, codes.
+
+    The one place that touches reading and set-up (to move onto the estimator layer).
+    """
+    fields = [*group_by, *([compare] if compare else []), *([weight] if weight else [])]
+    first = layers.read_points(data, layer=layer, fields=fields, where=where, engine=engine)
+    setup = geodesy.distance_setup(first.crs, first.label, distance=distance, target=crs, script="spread-contrast")
+    if setup.kind == "geodesic":
+        raise InputError(
+            f"{first.label} is in a geographic CRS ({first.crs.name}); spread-contrast computes planar "
+            "distances only: pass --crs with a projected CRS suited to the area (a UTM zone or a "
+            "national grid), e.g. --crs EPSG:32633."
+        )
+    parts = [(first, weight, first.label if to is not None else None)]
+    if to is not None:
+        second = layers.read_points(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], engine=engine)
+        parts.append((second, to_weight, second.label))
+    xs, ys, features, attrs, w = [], [], [], [], []
+    for points, field, name in parts:
+        x, y = setup.coordinates(points.x, points.y, points.crs, points.label, note=crs is None and name is not None)
+        weights = grouping.feature_weights(points.attributes, field, points.label)
+        xs.append(x), ys.append(y), features.append(points.feature + sum(len(a) for a in attrs))
+        w.append(np.ones(x.size) if weights is None else weights[points.feature])
+        attrs.append(points.attributes.assign(**{_SAMPLE: name}) if name is not None else points.attributes)
+    table = pd.concat(attrs, ignore_index=True)
+    groups = grouping.group_features(table, group_by)
+    values = table[_SAMPLE if to is not None else compare]
+    return (np.concatenate(xs), np.concatenate(ys), np.concatenate(features), np.concatenate(w),
+            values, groups, setup.units)  # fmt: skip
+
+
+def spread_contrast(
+    data, *, layer=None, compare=None, group_by=(), weight=None, to=None, to_layer=None, to_weight=None,
+    tolerance=0.01, method="auto", permutations=999, seed=None, distance=None, crs=None, where=None,
+    engine="pyogrio", progress=None,
+) -> pd.DataFrame:  # fmt: skip
+    """One row per test (per group): the samples' mean distances, energy statistics and p-value."""
+    group_by = list(group_by or ())
+    if (compare is None) == (to is None):
+        raise ParameterError(
+            "spread-contrast needs exactly one of --compare FIELD (the field whose values are the "
+            "samples) and --to (a second layer: the two layers are the samples)."
+        )
+    permutations = check_permutations(permutations)
+    x, y, feature, w, values, groups, units = _setup(
+        data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine
+    )
+    if values.isna().any():
+        warnings.warn(f"{int(values.isna().sum())} feature(s) without a value in {compare!r} are left out.", UserWarning, stacklevel=2)
+    seed = int(np.random.SeedSequence(seed).entropy % 2**63) if seed is None else int(seed)
+    streams = np.random.SeedSequence(seed).spawn(groups.count)
+    rows = []
+    for code in range(groups.count):
+        members = np.flatnonzero((groups.codes == code) & values.notna().to_numpy())
+        names, labels = np.unique(values.to_numpy()[members].astype(str), return_inverse=True)
+        unit_of = np.full(len(values), -1)
+        unit_of[members] = np.arange(members.size)
+        at = np.flatnonzero(unit_of[feature] >= 0)
+        sizes = np.bincount(labels[unit_of[feature[at]]], minlength=names.size)
+        row = {"samples": " | ".join(names), "n_samples": names.size, "n_points": at.size}
+        row["sizes"] = " | ".join(str(c) for c in sizes)
+        row["note"] = _problem(names, sizes, np.bincount(labels[unit_of[feature[at]]], w[at], names.size), compare or "the layers")
+        if row["note"] is None:
+            done = code * permutations
+            r = energy_test(x[at], y[at], labels, w[at] if weight or to_weight else None, units=unit_of[feature[at]],
+                            tolerance=tolerance, method=method, permutations=permutations, seed=streams[code],
+                            progress=None if progress is None else lambda i, _, d=done: progress(d + i, groups.count * permutations))  # fmt: skip
+            row.update(within_means=" | ".join(f"{v:.6g}" for v in r.within_mean), between_mean=r.between_mean,
+                       energy=r.energy, energy_lo=r.energy_lo, energy_hi=r.energy_hi, disco_between=r.disco_between,
+                       disco_within=r.disco_within, f_ratio=r.f_ratio, p_value=r.p_value, method=r.method,
+                       directions=r.directions)  # fmt: skip
+        rows.append(row)
+    table = pd.concat([groups.keys, pd.DataFrame(rows)], axis=1)
+    for column in ("within_means", "between_mean", "energy", "energy_lo", "energy_hi", "disco_between",
+                   "disco_within", "f_ratio", "p_value", "method", "directions"):  # fmt: skip
+        if column not in table:
+            table[column] = np.nan
+    tested = int(table["p_value"].notna().sum())
+    if tested < len(table):
+        warnings.warn(f"{len(table) - tested} of {len(table)} test(s) could not be computed; see the note column.", UserWarning, stacklevel=2)
+    table["p_adjusted"] = holm_adjust(table["p_value"].to_numpy(dtype=float))
+    table["adjustment"] = f"Holm over {tested} tests" if tested > 1 else "none (one test)"
+    table["permutations"], table["seed"], table["units"] = permutations, seed, units
+    order = [*groups.keys.columns, "samples", "n_samples", "sizes", "n_points", "within_means", "between_mean",
+             "energy", "energy_lo", "energy_hi", "disco_between", "disco_within", "f_ratio", "p_value",
+             "p_adjusted", "adjustment", "permutations", "seed", "method", "directions", "units", "note"]  # fmt: skip
+    table["method"] = table["method"].astype("string")
+    table["directions"] = table["directions"].astype("Int64")
+    return table[order]
+
+
+def _problem(names, counts, weights, what):
+    """Why a group cannot be tested (a note for its row), or None."""
+    if names.size < 2:
+        only = f" (only {names[0]!r})" if names.size else ""
+        return f"one value of {what}{only} in this group: nothing to compare"
+    small = [f"{n!r} has {c} point{'s' if c != 1 else ''}" for n, c in zip(names, counts, strict=True) if c < 2]
+    if small:
+        return "; ".join(small) + ": a sample needs at least 2 points (group more coarsely or drop that value with --where)"
+    empty = [repr(n) for n, v in zip(names, weights, strict=True) if not v > 0]
+    if empty:
+        return f"sample(s) {', '.join(empty)} have zero total weight: nothing to compare"
+    return None
