@@ -28,10 +28,11 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
             "distances only: pass --crs with a projected CRS suited to the area (a UTM zone or a "
             "national grid), e.g. --crs EPSG:32633."
         )
-    parts = [(first, weight, first.label if to is not None else None)]
+    parts = [(first, weight, None)]
     if to is not None:
         second = layers.read_points(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], engine=engine)
-        parts.append((second, to_weight, second.label))
+        names = (first.label, second.label) if first.label != second.label else ("INPUT", "--to layer")
+        parts = [(first, weight, names[0]), (second, to_weight, names[1])]
     xs, ys, features, attrs, w = [], [], [], [], []
     for points, field, name in parts:
         x, y = setup.coordinates(points.x, points.y, points.crs, points.label, note=crs is None and name is not None)
@@ -70,13 +71,14 @@ def spread_contrast(
     for code in range(groups.count):
         members = np.flatnonzero((groups.codes == code) & values.notna().to_numpy())
         names, labels = np.unique(values.to_numpy()[members].astype(str), return_inverse=True)
+        names = names.tolist()
         unit_of = np.full(len(values), -1)
         unit_of[members] = np.arange(members.size)
         at = np.flatnonzero(unit_of[feature] >= 0)
-        sizes = np.bincount(labels[unit_of[feature[at]]], minlength=names.size)
-        row = {"samples": " | ".join(names), "n_samples": names.size, "n_points": at.size}
+        sizes = np.bincount(labels[unit_of[feature[at]]], minlength=len(names))
+        row = {"samples": " | ".join(names), "n_samples": len(names), "n_points": at.size}
         row["sizes"] = " | ".join(str(c) for c in sizes)
-        row["note"] = _problem(names, sizes, np.bincount(labels[unit_of[feature[at]]], w[at], names.size), compare or "the layers")
+        row["note"] = _problem(names, sizes, np.bincount(labels[unit_of[feature[at]]], w[at], len(names)), compare or "the layers")
         if row["note"] is None:
             done = code * permutations
             r = energy_test(x[at], y[at], labels, w[at] if weight or to_weight else None, units=unit_of[feature[at]],
@@ -108,8 +110,8 @@ def spread_contrast(
 
 def _problem(names, counts, weights, what):
     """Why a group cannot be tested (a note for its row), or None."""
-    if names.size < 2:
-        only = f" (only {names[0]!r})" if names.size else ""
+    if len(names) < 2:
+        only = f" (only {names[0]!r})" if names else ""
         return f"one value of {what}{only} in this group: nothing to compare"
     small = [f"{n!r} has {c} point{'s' if c != 1 else ''}" for n, c in zip(names, counts, strict=True) if c < 2]
     if small:
