@@ -11,9 +11,7 @@ import os
 import sys
 from typing import Any
 
-from . import layers
 from .errors import ParameterError
-from .kernels import thread_limit
 from .manifest import Script, get_script, validate
 
 __all__ = ["run", "run_script"]
@@ -68,6 +66,8 @@ def _read_piped(script: Script, values: dict[str, Any]) -> dict[str, Any]:
         if chosen is not None:
             raise ParameterError("--input-format applies to an input given as '-' (standard input) only.")
         return values
+    from . import layers
+
     return {**values, piped[0].name: layers.read_stdin(chosen)}
 
 
@@ -78,6 +78,9 @@ def run_script(
 
     ``made_in`` (a chain's file and step) is recorded with the output's provenance.
     """
+    from . import layers  # here, not at the top: the command line's list/--help stay light
+    from .kernels import thread_limit
+
     values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
     target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
