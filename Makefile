@@ -3,6 +3,8 @@ PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
+# numba's compiled kernels, cached once after installing and whenever a kernel source changes
+COMPILED := $(VENV)/.compiled
 
 .PHONY: demo test lint docs bench fuzz clean
 
@@ -12,7 +14,11 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
-demo: $(STAMP)
+$(COMPILED): $(STAMP) $(wildcard toolbox/kernels/*.py toolbox/kernels/*/*.py)
+	$(BIN)/python -m toolbox.precompile
+	touch $(COMPILED)
+
+demo: $(COMPILED)
 	@mkdir -p demo_output
 	$(BIN)/pairspread group-spread sample_layers/quenwick.gpkg --layer households \
 	    --group-by district --weight residents --output demo_output/spread.gpkg --overwrite
@@ -21,7 +27,7 @@ demo: $(STAMP)
 	@echo "The tables went to demo_output/spread.gpkg (table 'group_spread') and demo_output/spread_east.csv:"
 	@$(BIN)/python -c "import pyogrio; t = pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread'); print(t.to_string(index=False, na_rep=''))"
 
-test: $(STAMP) lint
+test: $(COMPILED) lint
 	$(BIN)/python -m pytest -q toolbox tests
 
 lint: $(STAMP)
@@ -32,11 +38,11 @@ docs: $(STAMP)
 	$(BIN)/python -m toolbox.docgen docs/scripts.md
 	$(BIN)/python -c "import toolbox.chain as c; c.main(['schema', 'docs/chain.schema.json'])"
 
-bench: $(STAMP)
+bench: $(COMPILED)
 	$(BIN)/python bench/bench_suite.py
 	$(BIN)/python bench/bench_cross_spread.py
 
-fuzz: $(STAMP)
+fuzz: $(COMPILED)
 	HYPOTHESIS_PROFILE=long $(BIN)/python -m pytest -q tests/test_properties.py
 	PAIRSPREAD_KILL_TRIALS=500 $(BIN)/python -m pytest -q -rP tests/test_safety.py -k sigkill
 
