@@ -11,10 +11,13 @@ EPSG:32705 (WGS 84 / UTM zone 5S) near easting 500000, northing 6120000.
 
 from __future__ import annotations
 
+import io
 import os
 import shutil
 import subprocess
 import sys
+import tempfile
+import traceback
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -286,14 +289,66 @@ ENTRIES = {
 }
 
 
+def _in_process(args: list[str], cwd=None) -> subprocess.CompletedProcess:
+    """``toolbox.cli.main(args)`` in this process, with what it writes captured at the file
+    descriptors (so GDAL's own messages show too) and the exit status a process would have."""
+    from toolbox.cli import main
+
+    sys.stdout.flush()
+    sys.stderr.flush()
+    files = [tempfile.TemporaryFile() for _ in range(2)]
+    saved = [os.dup(1), os.dup(2)]
+    streams = sys.stdout, sys.stderr
+    here = os.getcwd()
+    try:
+        for fd, f in zip((1, 2), files, strict=True):
+            os.dup2(f.fileno(), fd)
+        sys.stdout, sys.stderr = (
+            io.TextIOWrapper(open(fd, "wb", closefd=False), encoding="utf-8", write_through=True)
+            for fd in (1, 2)
+        )
+        if cwd is not None:
+            os.chdir(cwd)
+        try:
+            code = main(args)
+        except SystemExit as exc:  # what the interpreter makes of sys.exit(...)
+            code = exc.code if isinstance(exc.code, int) else (exc.code is not None)
+            if isinstance(exc.code, str):
+                print(exc.code, file=sys.stderr)
+        except Exception:  # an uncaught exception: traceback and status 1, as the interpreter does
+            traceback.print_exc()
+            code = 1
+        sys.stdout.flush()
+        sys.stderr.flush()
+    finally:
+        os.chdir(here)
+        sys.stdout, sys.stderr = streams
+        for fd, copy in zip((1, 2), saved, strict=True):
+            os.dup2(copy, fd)
+            os.close(copy)
+    out, err = [],  []
+    for f, text in zip(files, (out, err), strict=True):
+        f.seek(0)
+        text.append(f.read().decode("utf-8"))
+        f.close()
+    return subprocess.CompletedProcess(["pairspread", *args], int(code), out[0], err[0])
+
+
 @pytest.fixture(scope="session")
 def cli():
-    """Run the command line in a subprocess: ``cli(*args, entry="script"|"module", ...)``.
+    """Run the command line: ``cli(*args, entry="script"|"module"|"main", ...)``.
 
-    Returns the CompletedProcess (text mode). ``env`` entries are added to the environment.
+    ``script`` and ``module`` start the console script or ``python -m toolbox`` in a
+    subprocess; ``main`` calls :func:`toolbox.cli.main` in this process, which is the same code
+    without the interpreter start-up (about a second and a half of imports here), for tests
+    where a fresh process proves nothing more. Returns a CompletedProcess (text) either way.
+    ``env`` entries are added to the environment (subprocesses only).
     """
 
     def run(*args, entry: str = "script", cwd=None, env: dict | None = None, stdin=None, timeout=120):
+        if entry == "main":
+            assert env is None and stdin is None, "environment and stdin need a subprocess"
+            return _in_process([str(a) for a in args], cwd)
         full_env = {**os.environ, **(env or {})}
         full_env.pop("PYTHONWARNINGS", None)
         return subprocess.run(

@@ -103,8 +103,8 @@ def run_main(capsys):
 # subprocess runs: both entry points, every input format
 
 
-# each input format once, each entry point at least once
-PAIRS = [(".gpkg", "script"), (".shp", "module"), (".geojson", "script")]
+# each input format once, each entry point at least once (``main``: in-process, see conftest)
+PAIRS = [(".gpkg", "script"), (".shp", "module"), (".geojson", "main")]
 
 
 @pytest.mark.parametrize(
@@ -136,7 +136,7 @@ def test_exact_weighted_csv_on_stdout(cli, entry, homes_file, homes, reference, 
 
 
 def test_printed_table_without_output(cli, homes_gpkg, homes, reference, by_key, result_columns):
-    proc = cli("group-spread", *homes_gpkg.args, "--group-by", "zone", "--tolerance", "0")
+    proc = cli("group-spread", *homes_gpkg.args, "--group-by", "zone", "--tolerance", "0", entry="main")
     assert proc.returncode == 0, proc.stderr
     lines = proc.stdout.splitlines()
     assert lines[0].split() == ["zone", *result_columns]
@@ -165,6 +165,7 @@ def test_gpkg_output_new_file(cli, tmp_path, homes_file, homes, reference, by_ke
         "0",
         "--output",
         out,
+        entry="main",
     )
     assert proc.returncode == 0, proc.stderr
     ref = reference(homes, ["zone", "tenure"], "pop")
@@ -202,18 +203,18 @@ def test_gpkg_output_into_existing_geopackage(cli, tmp_path, homes_gpkg, homes, 
         "--output-layer",
         "spread",
     ]
-    proc = cli(*args, "--group-by", "zone")
+    proc = cli(*args, "--group-by", "zone", entry="main")
     assert proc.returncode == 0, proc.stderr
     unchanged_layers()
     check_exact(pyogrio.read_dataframe(target, layer="spread"), reference(homes, ["zone"]), by_key, ["zone"])
 
     digest = sha256(target)
-    refused = cli(*args, "--group-by", "tenure")
+    refused = cli(*args, "--group-by", "tenure", entry="main")
     assert refused.returncode != 0
     assert "'spread'" in refused.stderr and "--overwrite" in refused.stderr
     assert sha256(target) == digest
 
-    replaced = cli(*args, "--group-by", "tenure", "--overwrite")
+    replaced = cli(*args, "--group-by", "tenure", "--overwrite", entry="main")
     assert replaced.returncode == 0, replaced.stderr
     unchanged_layers()
     table = pyogrio.read_dataframe(target, layer="spread")
@@ -221,8 +222,8 @@ def test_gpkg_output_into_existing_geopackage(cli, tmp_path, homes_gpkg, homes, 
 
 
 def test_quiet(cli, tmp_path, homes_gpkg, same_table):
-    loud = cli("group-spread", *homes_gpkg.args, "--output", tmp_path / "a.csv")
-    quiet = cli("group-spread", *homes_gpkg.args, "--output", tmp_path / "b.gpkg", "--quiet")
+    loud = cli("group-spread", *homes_gpkg.args, "--output", tmp_path / "a.csv", entry="main")
+    quiet = cli("group-spread", *homes_gpkg.args, "--output", tmp_path / "b.gpkg", "--quiet", entry="main")
     assert loud.returncode == quiet.returncode == 0
     assert loud.stderr.startswith("pairspread: wrote 1 row(s) to")
     # nothing at all with --quiet; a GeoPackage output once drew a GDAL warning about the
@@ -506,7 +507,9 @@ def test_version(cli):
 
 
 def test_api_equals_cli_csv(cli, homes_gpkg, homes, same_table, reference, by_key):
-    proc = cli("group-spread", *homes_gpkg.args, "--group-by", "zone", "--weight", "pop", "--output", "-")
+    proc = cli(
+        "group-spread", *homes_gpkg.args, "--group-by", "zone", "--weight", "pop", "--output", "-", entry="main"
+    )
     assert proc.returncode == 0, proc.stderr
     from_cli = read_csv_text(proc.stdout)
     check_bounded(from_cli, reference(homes, ["zone"], "pop"), by_key, ["zone"], 0.01)

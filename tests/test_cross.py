@@ -368,14 +368,14 @@ def homes_refs(homes):
 
 
 # --------------------------------------------------------------------------------------------
-# the command line as a subprocess: every table output kind
+# the command line (a subprocess once, in-process otherwise): every table output kind
 
 
 TABLE_CASES = [
     # (output suffix, entry point, weighted, tolerance)
     ("-", "script", True, 0.0),
     (".csv", "module", False, 0.01),  # `python -m toolbox` once
-    (".parquet", "script", True, 1e-4),
+    (".parquet", "main", True, 1e-4),  # in-process (see conftest): no start-up to prove again
 ]
 
 
@@ -398,7 +398,7 @@ def test_cli_gpkg_table_into_existing_geopackage(cli, tmp_path, homes_gpkg, home
     target = tmp_path / "project.gpkg"
     shutil.copyfile(homes_gpkg.path, target)
     before = {name: pyogrio.read_dataframe(target, layer=name) for name in ("homes", "sites", "zones")}
-    proc = cli("cross-spread", *homes_gpkg.args, "--group-by", "zone", "--output", target)
+    proc = cli("cross-spread", *homes_gpkg.args, "--group-by", "zone", "--output", target, entry="main")
     assert proc.returncode == 0, proc.stderr
     listed = {str(name): kind for name, kind in pyogrio.list_layers(target)}
     # the manifest's default table name, written as a non-spatial table beside the other layers
@@ -427,7 +427,7 @@ def _wide_matches_long(wide: pd.DataFrame, long: pd.DataFrame):
 def test_cli_wide_matrix(cli, run_main, homes_gpkg, homes):
     args = ["cross-spread", *homes_gpkg.args, "--group-by", "zone", "--weight", "pop", "--where",
             "zone IS NOT NULL"]
-    proc = cli(*args, "--wide", "--output", "-")
+    proc = cli(*args, "--wide", "--output", "-", entry="main")
     assert proc.returncode == 0, proc.stderr
     wide = pd.read_csv(io.StringIO(proc.stdout))
     code, out, err = run_main(*args, "--output", "-")
@@ -489,7 +489,7 @@ def test_cli_two_layers_with_crs_mismatch(cli, homes_gpkg, homes, sites_other_cr
     path, moved = sites_other_crs
     proc = cli("cross-spread", *homes_gpkg.args, "--group-by", "zone", "--weight", "pop", "--to", path,
                "--to-layer", "sites", "--to-group-by", "kind", "--to-weight", "capacity", "--tolerance", "0",
-               "--output", "-")
+               "--output", "-", entry="main")
     assert proc.returncode == 0, proc.stderr
     warnings = [line for line in proc.stderr.splitlines() if line.startswith("pairspread: warning:")]
     assert len(warnings) == 1 and "reprojected" in warnings[0]

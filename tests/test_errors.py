@@ -269,7 +269,7 @@ def test_no_crs_works_with_a_warning(cli, write_layer, homes, tmp_path, referenc
     with pytest.warns(UserWarning, match="crs"):  # pyogrio's own note on writing without a CRS
         path = write_layer(frame, ".shp")
     assert not path.with_suffix(".prj").exists()
-    proc = cli("group-spread", path, "--tolerance", "0", "--output", "-", cwd=tmp_path)
+    proc = cli("group-spread", path, "--tolerance", "0", "--output", "-", cwd=tmp_path, entry="main")
     assert proc.returncode == 0, proc.stderr
     lines = proc.stderr.splitlines()
     assert len(lines) == 1 and lines[0].startswith("pairspread: warning: ") and "no CRS" in lines[0]

@@ -335,7 +335,9 @@ def run_csv(capsys, *args):
 
 def test_cli_defaults_to_geodesic(cli, lonlat_gpkg, tmp_path):
     frame, path = lonlat_gpkg
-    proc = cli("group-spread", path, "--group-by", "zone", "--weight", "pop", "--output", "-", cwd=tmp_path)
+    proc = cli(
+        "group-spread", path, "--group-by", "zone", "--weight", "pop", "--output", "-", cwd=tmp_path, entry="main"
+    )
     assert proc.returncode == 0, proc.stderr
     table = pd.read_csv(io.StringIO(proc.stdout)).set_index("zone")
     assert set(table["units"]) == {"metre"}

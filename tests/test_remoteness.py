@@ -327,7 +327,7 @@ def check_copy(out: gpd.GeoDataFrame, homes: gpd.GeoDataFrame, ref: pd.DataFrame
 
 
 # --------------------------------------------------------------------------------------------
-# the command line, as a subprocess, to every output kind
+# the command line (a subprocess once, in-process otherwise), to every output kind
 
 
 def read_back(path: Path, layer: str | None = None) -> gpd.GeoDataFrame:
@@ -339,7 +339,7 @@ def read_back(path: Path, layer: str | None = None) -> gpd.GeoDataFrame:
 OUTPUT_CASES = [
     # (suffix, entry point, weighted, tolerance)
     (".shp", "script", True, 0.0),
-    (".geojson", "script", False, 0.01),
+    (".geojson", "main", False, 0.01),  # in-process (see conftest): no start-up to prove again
     (".parquet", "module", True, 0.01),  # `python -m toolbox` once
 ]
 
@@ -367,7 +367,7 @@ def test_cli_into_existing_geopackage(cli, tmp_path, homes_gpkg, homes, homes_re
     before = {name: pyogrio.read_dataframe(target, layer=name) for name in ("homes", "sites", "zones")}
     digest = sha256(homes_gpkg.path)
     proc = cli("point-remoteness", *homes_gpkg.args, "--group-by", "zone,tenure", "--output", target,
-               "--output-layer", "remote")
+               "--output-layer", "remote", entry="main")
     assert proc.returncode == 0, proc.stderr
     assert sha256(homes_gpkg.path) == digest
     listed = {str(name): kind for name, kind in pyogrio.list_layers(target)}
@@ -378,7 +378,7 @@ def test_cli_into_existing_geopackage(cli, tmp_path, homes_gpkg, homes, homes_re
 
     # the default layer name comes from the manifest; an existing layer needs --overwrite
     again = cli("point-remoteness", *homes_gpkg.args, "--group-by", "zone", "--output", target,
-                "--output-layer", "remote")
+                "--output-layer", "remote", entry="main")
     assert again.returncode != 0 and "--overwrite" in again.stderr
     assert again.stderr.count("\n") == 1
 
