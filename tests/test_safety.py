@@ -23,7 +23,6 @@ import json
 import os
 import random
 import re
-import resource
 import shutil
 import signal
 import sqlite3
@@ -224,7 +223,7 @@ def small_inputs(tmp_path_factory) -> dict[str, tuple[Path, str | None]]:
 # waits the trial's delay and sends SIGKILL.
 FORK_SERVER = textwrap.dedent(
     """
-    import json, os, signal, sys, time
+    import json, os, resource, signal, sys, time
 
     from toolbox.cli import main
     import toolbox.scripts.group_spread, toolbox.scripts.point_remoteness  # noqa: F401
@@ -249,6 +248,10 @@ FORK_SERVER = textwrap.dedent(
                 fd = os.open(job["log"], os.O_WRONLY | os.O_CREAT | os.O_TRUNC)
                 os.dup2(fd, 1)
                 os.dup2(fd, 2)
+                if job.get("err"):  # stderr apart from stdout
+                    os.dup2(os.open(job["err"], os.O_WRONLY | os.O_CREAT | os.O_TRUNC), 2)
+                if job.get("fsize"):  # `ulimit -f`: no file of this process grows beyond it
+                    resource.setrlimit(resource.RLIMIT_FSIZE, (job["fsize"], job["fsize"]))
                 if job.get("kill_at"):  # SIGKILL just before or after the k-th rename there
                     k, when, where = job["kill_at"]
                     real_replace, calls = os.replace, [0]
@@ -839,18 +842,16 @@ LIMITS = {
 }
 
 
-def _limited(limit: int):
-    def preexec() -> None:  # runs in the child before it starts: `ulimit -f`
-        resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
-
-    return preexec
-
-
 @pytest.fixture(scope="module")
 def limited_runs(tmp_path_factory, big_input, project):
-    """Every case of LIMITS run at once, each in a subprocess under its file-size limit."""
+    """Every case of LIMITS, each in a process of its own under its file-size limit.
+
+    The processes are forked from a pre-imported interpreter (the ForkServer of the kill
+    trials), which sets the limit and runs the command line's main(); the limit is a property
+    of the process, which a fresh interpreter would not change.
+    """
     root = tmp_path_factory.mktemp("limited")
-    runs = {}
+    jobs = {}
     for kind, (script, suffix, limit) in LIMITS.items():
         folder = root / re.sub(r"\W+", "_", kind)
         folder.mkdir()
@@ -865,18 +866,28 @@ def limited_runs(tmp_path_factory, big_input, project):
         else:  # the 20,000 homes with their new fields
             target = folder / f"far{suffix}"
             args = [script, str(big_input), "--output", str(target)]
-        proc = subprocess.Popen(
-            [sys.executable, "-m", "toolbox", *args, "--quiet"],
-            stdout=subprocess.PIPE,
-            stderr=subprocess.PIPE,
-            text=True,
-            env=env_for_subprocess(),
-            preexec_fn=_limited(limit),
+        jobs[kind] = (
+            {
+                "args": [*args, "--quiet"],
+                "folder": str(root),
+                "prefix": "-",
+                "mode": "none",
+                "delay": 0,
+                "log": str(root / f"{folder.name}.out"),
+                "err": str(root / f"{folder.name}.err"),
+                "fsize": limit,
+            },
+            target,
         )
-        runs[kind] = (proc, target)
+    servers = [ForkServer(root) for _ in range(2)]
+    try:
+        results = run_trials(servers, [job for job, _ in jobs.values()])
+    finally:
+        for server in servers:
+            server.close()
     return {
-        kind: (*proc.communicate(timeout=300), proc.returncode, target)
-        for kind, (proc, target) in runs.items()
+        kind: (Path(job["log"]).read_text(), Path(job["err"]).read_text(), result["code"], target)
+        for (kind, (job, target)), result in zip(jobs.items(), results, strict=True)
     }
 
 
