@@ -28,7 +28,7 @@ demo: $(COMPILED)
 	@$(BIN)/python -c "import pyogrio; t = pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread'); print(t.to_string(index=False, na_rep=''))"
 
 test: $(COMPILED) lint
-	$(BIN)/python -m pytest -q toolbox tests
+	$(BIN)/python -m pytest -q -n 2 toolbox tests
 
 lint: $(STAMP)
 	$(BIN)/ruff check toolbox tests bench
