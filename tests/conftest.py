@@ -141,7 +141,7 @@ class LayerFile:
 
     @property
     def args(self) -> list[str]:
-        """``INPUT [--layer NAME]`` for the command line."""
+        """``DATASET [--layer NAME]`` for the command line."""
         return [str(self.path), *(["--layer", self.layer] if self.layer else [])]
 
     @property

@@ -471,7 +471,7 @@ def test_describe_text(run_main):
     entry, params = manifest_entry("group-spread")
     assert entry["summary"] in out
     for name in entry["params"]:
-        spelling = "INPUT" if params[name]["kind"] == "dataset" else "--" + name.replace("_", "-")
+        spelling = "DATASET" if params[name]["kind"] == "dataset" else "--" + name.replace("_", "-")
         assert spelling in out
         assert params[name]["help"] in out
 
@@ -493,6 +493,21 @@ def test_describe_json(run_main, result_columns):
     assert tolerance["range"] == [0.0, 0.5] and tolerance["default"] == 0.01
     # the documented columns are the ones the script writes, in the same order
     assert [c for c in described["columns"] if c != "group field(s)"] == result_columns
+
+
+def test_kinds_and_positional_are_the_packs_own(run_main, capsys):
+    # every kind a script shows is one the pack defines and explains; the positional is DATASET
+    from toolbox.manifest import KIND_MEANINGS, scripts
+
+    for name in scripts():
+        code, out, err = run_main("describe", name, "--json")
+        assert code == 0, err
+        for p in json.loads(out)["params"]:
+            assert p["kind"] in KIND_MEANINGS, (name, p)
+        with pytest.raises(SystemExit) as stopped:
+            main([name, "--help"])
+        out = capsys.readouterr().out
+        assert stopped.value.code == 0 and "DATASET" in out and "INPUT" not in out
 
 
 def test_version(cli):

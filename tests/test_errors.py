@@ -294,11 +294,11 @@ def test_unknown_script(fails):
 
 @pytest.mark.parametrize(
     ("args", "needle"),
-    [(["group-spread"], "INPUT"), (["group-spread", "x.gpkg", "--group_by", "zone"], "--group_by")],
+    [(["group-spread"], "DATASET"), (["group-spread", "x.gpkg", "--group_by", "zone"], "--group_by")],
     ids=["no-input", "unknown-option"],
 )
 def test_command_line_mistakes_are_one_line(capfd, args, needle):
-    # argparse's own errors (missing INPUT, unknown option) keep to one line too
+    # argparse's own errors (missing DATASET, unknown option) keep to one line too
     with pytest.raises(SystemExit) as stopped:
         main(args)
     assert stopped.value.code != 0

@@ -20,7 +20,7 @@ __all__ = ["script_function"]
 def _docstring(script: Script) -> str:
     lines = [script.summary, "", "Parameters", "----------"]
     for p in script.params:
-        kind = {"field-list": "str or list of str", "number": "float", "flag": "bool"}.get(p.kind, "str")
+        kind = {"columns": "str or list of str", "number": "float", "flag": "bool"}.get(p.kind, "str")
         if p.kind == "dataset":
             kind = "str, os.PathLike or geopandas.GeoDataFrame"
         if p.kind == "choice":

@@ -40,7 +40,7 @@ from typing import Any
 
 from . import layers
 from .errors import InputError, PairspreadError, ParameterError
-from .manifest import Param, Script, get_script, scripts, validate
+from .manifest import DATASET_KINDS, RESULT_KINDS, Param, Script, get_script, scripts, validate
 
 __all__ = ["FORMAT_VERSION", "Chain", "Step", "load_chain", "run_chain", "plan_text", "chain_schema"]
 
@@ -87,11 +87,11 @@ class Chain:
 
 
 def _is_input(p: Param) -> bool:
-    return p.kind.endswith("dataset")
+    return p.kind in DATASET_KINDS
 
 
 def _is_output(p: Param) -> bool:
-    return p.kind.startswith("output-") and not p.kind.endswith("-name")
+    return p.kind in RESULT_KINDS
 
 
 def _produces_layer(step: Step, steps: Mapping[str, Step]) -> bool:
@@ -99,7 +99,7 @@ def _produces_layer(step: Step, steps: Mapping[str, Step]) -> bool:
     target = next((p for p in step.script.params if _is_output(p)), None)
     if target is None:
         return False
-    if target.kind == "output-layer":
+    if target.kind == "result-layer-file":
         return True
     extras = step.params  # regions and group shapes turn a table into a layer
     return extras.get("output_on") == "regions" or extras.get("group_shape") in ("hull", "centre")
@@ -529,7 +529,7 @@ def _param_schema(p: Param) -> dict[str, Any]:
     text = {"type": "string"}
     if _is_input(p):
         schema: dict[str, Any] = {"anyOf": [text, {"$ref": "#/$defs/result"}]}
-    elif p.kind == "field-list":
+    elif p.kind == "columns":
         schema = {"anyOf": [text, {"type": "array", "items": text}]}
     elif p.kind in ("number", "integer"):
         schema = {"type": p.kind}

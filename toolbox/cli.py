@@ -32,16 +32,18 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
     if p.default not in (None, False):
         help_text += f" Default: {p.default}."
     if p.kind == "dataset":
-        parser.add_argument(p.name, metavar="INPUT", help=help_text)
+        parser.add_argument(p.name, metavar="DATASET", help=help_text)
     elif p.kind == "flag":
         parser.add_argument(p.option, dest=p.name, action="store_true", default=None, help=help_text)
     else:
         metavar = {
-            "field-list": "F1,F2",
-            "field": "FIELD",
-            "output-table": "PATH",
-            "output-layer": "PATH",
-            "other-dataset": "DATASET",
+            "columns": "F1,F2",
+            "column": "FIELD",
+            "layer-in-dataset": "LAYER",
+            "name-in-file": "NAME",
+            "result-table-file": "PATH",
+            "result-layer-file": "PATH",
+            "second-dataset": "DATASET",
         }.get(p.kind)
         if p.kind == "choice":
             metavar = "{" + "|".join(p.choices) + "}"
@@ -86,7 +88,7 @@ def build_parser() -> argparse.ArgumentParser:
 def _describe_text(script: Script) -> str:
     lines = [f"{script.name}: {script.summary}", ""]
     for p in script.params:
-        spelling = "INPUT" if p.kind == "dataset" else p.option
+        spelling = "DATASET" if p.kind == "dataset" else p.option
         extra = []
         if p.choices:
             extra.append("one of " + ", ".join(p.choices))

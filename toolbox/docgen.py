@@ -14,7 +14,7 @@ from .manifest import Param, describe_range, scripts
 
 
 def _param_row(p: Param) -> str:
-    spelling = "`INPUT`" if p.kind == "dataset" else f"`{p.option}`"
+    spelling = "`DATASET`" if p.kind == "dataset" else f"`{p.option}`"
     allowed = p.kind
     if p.choices:
         allowed = " \\| ".join(f"`{c}`" for c in p.choices)

@@ -22,24 +22,30 @@ from typing import Any
 
 from .errors import ManifestError, ParameterError
 
-__all__ = ["ENTRY_POINT_GROUP", "KINDS", "Param", "Script", "scripts", "get_script", "validate"]
+__all__ = ["ENTRY_POINT_GROUP", "KINDS", "KIND_MEANINGS", "DATASET_KINDS", "RESULT_KINDS", "Param", "Script", "scripts", "get_script", "validate"]
 
 ENTRY_POINT_GROUP = "pairspread.scripts"
-KINDS = (
-    "dataset",
-    "other-dataset",
-    "layer-name",
-    "field",
-    "field-list",
-    "number",
-    "integer",
-    "choice",
-    "text",
-    "output-table",
-    "output-layer",
-    "output-layer-name",
-    "flag",
-)
+#: every parameter kind, with what its value is; the CLI, the Python API, the docs and
+#: ``describe --json`` read the kind to know how to take and show a value
+KIND_MEANINGS = {
+    "dataset": "the vector dataset to measure: a path, or a GeoDataFrame from Python",
+    "second-dataset": "another vector dataset read beside the first (path or GeoDataFrame)",
+    "layer-in-dataset": "the name of one layer inside a dataset that holds several",
+    "column": "the name of one attribute column of the layer",
+    "columns": "names of attribute columns, comma-separated or a list",
+    "number": "a real number, possibly within a range",
+    "integer": "a whole number, possibly within a range",
+    "choice": "one word out of a fixed list",
+    "text": "free text passed on as given",
+    "result-table-file": "where a result table goes: a file path (its suffix picks the format) or -",
+    "result-layer-file": "where a copy of the layer with added columns goes: a file path",
+    "name-in-file": "the name a result gets inside a GeoPackage",
+    "flag": "on or off",
+}
+KINDS = tuple(KIND_MEANINGS)
+#: kinds whose value is read (a dataset) and kinds whose value is where a result is written
+DATASET_KINDS = ("dataset", "second-dataset")
+RESULT_KINDS = ("result-table-file", "result-layer-file")
 
 
 @dataclass(frozen=True)
@@ -63,7 +69,7 @@ class Param:
         return "--" + self.name.replace("_", "-")
 
     def describe(self) -> dict[str, Any]:
-        """Plain-data description, for ``describe --json`` and generated forms."""
+        """Plain-data description, for ``describe --json`` (other programs read it to drive a script)."""
         out: dict[str, Any] = {"name": self.name, "kind": self.kind, "help": self.help}
         out["option"] = None if self.kind == "dataset" else self.option
         out["default"] = self.default
@@ -237,28 +243,28 @@ def get_script(name: str) -> Script:
 
 def _fail(script: Script, p: Param, allowed: str, value: Any) -> ParameterError:
     return ParameterError(
-        f"The {p.option if p.kind != 'dataset' else 'INPUT'} parameter of {script.name} must be "
+        f"The {p.option if p.kind != 'dataset' else 'DATASET'} parameter of {script.name} must be "
         f"{allowed}. Got {value!r} instead."
     )
 
 
 def _convert(script: Script, p: Param, value: Any) -> Any:
     kind = p.kind
-    if kind in ("dataset", "other-dataset"):
+    if kind in ("dataset", "second-dataset"):
         if hasattr(value, "geometry") or isinstance(value, (str, os.PathLike)):
             return value
         raise _fail(script, p, "a path or a GeoDataFrame", value)
-    if kind == "field-list":
+    if kind == "columns":
         items = [value] if isinstance(value, str) else list(value)
         fields = [s.strip() for item in items for s in str(item).split(",")]
         if any(not f for f in fields):
             raise _fail(script, p, "field names separated by commas, none empty", value)
         return fields
-    if kind in ("layer-name", "field", "text", "output-layer-name"):
+    if kind in ("layer-in-dataset", "column", "text", "name-in-file"):
         if not isinstance(value, str) or (kind != "text" and not value.strip()):
             raise _fail(script, p, "a non-empty text", value)
         return value
-    if kind in ("output-table", "output-layer"):
+    if kind in ("result-table-file", "result-layer-file"):
         if not isinstance(value, (str, os.PathLike)) or not str(value):
             raise _fail(script, p, "a file path or -", value)
         return os.fspath(value)
@@ -316,9 +322,9 @@ def validate(script: Script, values: Mapping[str, Any], *, cli: bool = False) ->
         if value is None:
             if p.required or p.kind == "dataset" or (cli and p.cli_required):
                 raise ParameterError(
-                    f"{script.name} needs {'INPUT' if p.kind == 'dataset' else p.option}: {p.help}"
+                    f"{script.name} needs {'DATASET' if p.kind == 'dataset' else p.option}: {p.help}"
                 )
-            out[p.name] = [] if p.kind == "field-list" and p.default is None else p.default
+            out[p.name] = [] if p.kind == "columns" and p.default is None else p.default
             continue
         out[p.name] = _convert(script, p, value)
     return out

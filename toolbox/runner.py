@@ -12,7 +12,7 @@ import sys
 from typing import Any
 
 from .errors import ParameterError
-from .manifest import Script, get_script, validate
+from .manifest import DATASET_KINDS, Script, get_script, validate
 
 __all__ = ["run", "run_script"]
 
@@ -55,11 +55,11 @@ def _is_dash(value: Any) -> bool:
 
 def _read_piped(script: Script, values: dict[str, Any]) -> dict[str, Any]:
     """Input layers given as ``-`` read from standard input, once, into memory."""
-    piped = [p for p in script.params if p.kind.endswith("dataset") and _is_dash(values.get(p.name))]
+    piped = [p for p in script.params if p.kind in DATASET_KINDS and _is_dash(values.get(p.name))]
     chosen = values.get("input_format")
     if len(piped) > 1:
         raise ParameterError(
-            f"{' and '.join(p.option if p.kind != 'dataset' else 'INPUT' for p in piped)} are both '-'; "
+            f"{' and '.join(p.option if p.kind != 'dataset' else 'DATASET' for p in piped)} are both '-'; "
             "only one input can come from standard input."
         )
     if not piped:
@@ -83,9 +83,9 @@ def run_script(
 
     values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
-    target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
+    target = next((p for p in script.params if p.kind in ("result-table-file", "result-layer-file")), None)
     output = values.get(target.name) if target else None
-    what = "layer" if target is not None and target.kind == "output-layer" else "table"
+    what = "layer" if target is not None and target.kind == "result-layer-file" else "table"
     where = dict(
         what=what,
         layer_name=values.get("output_layer") or "",
