@@ -45,6 +45,7 @@ bench: $(COMPILED)
 fuzz: $(COMPILED)
 	HYPOTHESIS_PROFILE=long $(BIN)/python -m pytest -q tests/test_properties.py
 	PAIRSPREAD_KILL_TRIALS=500 $(BIN)/python -m pytest -q -rP tests/test_safety.py -k sigkill
+	PAIRSPREAD_WRITER_TRIALS=100 $(BIN)/python -m pytest -q tests/test_concurrent_writes.py
 
 clean:
 	rm -rf $(VENV) demo_output bench/data

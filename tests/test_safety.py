@@ -344,13 +344,16 @@ def check_killed_project(folder: Path, pristine: Path, before: dict, expected_t:
     The file must open, pass SQLite's integrity check, and either be byte for byte the pristine
     file, or hold every earlier layer unchanged plus a complete table ``t`` equal to the one an
     uninterrupted run writes. Beside it there may only be hidden scratch folders of the killed
-    process (``.project.gpkg.*.part``), never a journal or a second GeoPackage.
+    process (``.project.gpkg.*.part``) and the empty lock file it held
+    (``.project.gpkg.lock``, see ``writer_lock``), never a journal or a second GeoPackage.
     """
     target = folder / "project.gpkg"
     names = sorted(os.listdir(folder))
     assert target.is_file(), f"the project GeoPackage is gone; the folder holds {names}"
-    extra = [n for n in names if n not in ("project.gpkg", "log.txt")]
+    extra = [n for n in names if n not in ("project.gpkg", "log.txt", ".project.gpkg.lock")]
     assert all(SCRATCH.match(n) and (folder / n).is_dir() for n in extra), names
+    if ".project.gpkg.lock" in names:
+        assert (folder / ".project.gpkg.lock").stat().st_size == 0
     assert sqlite_ok(target)
     layers = [str(row[0]) for row in pyogrio.list_layers(target)]
     if sha256(target) == sha256(pristine):

@@ -3,11 +3,13 @@ touching layers that were already there."""
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import tempfile
+import time
 import warnings
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 
 import pandas as pd
@@ -30,6 +32,78 @@ __all__ = [
 TABLE_FORMATS = {".gpkg": "gpkg", ".csv": "csv", ".parquet": "parquet"}
 LAYER_FORMATS = {".gpkg": "gpkg", ".shp": "shp", ".geojson": "geojson", ".parquet": "parquet"}
 _SHAPEFILE_PARTS = (".shp", ".shx", ".dbf", ".prj", ".cpg")
+
+#: how long a writer waits for another pairspread run writing into the same file
+LOCK_WAIT_SECONDS = 600.0
+#: how often a GeoPackage changed by another program while we wrote is copied again
+_FOREIGN_CHANGE_RETRIES = 3
+
+try:  # advisory locks: POSIX; elsewhere only the check that the file did not change applies
+    import fcntl
+except ImportError:  # pragma: no cover - Windows
+    fcntl = None
+
+
+def lock_path(target: Path) -> Path:
+    """The lock file beside ``target`` that every pairspread run writing into it takes."""
+    return target.parent / f".{target.name}.lock"
+
+
+@contextlib.contextmanager
+def writer_lock(target: Path, *, wait: float | None = None) -> Iterator[None]:
+    """Serialise every pairspread run that writes into ``target`` (an advisory lock).
+
+    Runs writing different tables into one GeoPackage each copy the file, add their table and
+    rename the copy over it; without this lock a later rename drops an earlier table. The lock
+    file (``.NAME.lock`` beside the output) is removed when the write is done; one left by a
+    killed run is harmless and is reused. Waiting longer than ``wait`` seconds fails loudly.
+    """
+    if fcntl is None:  # pragma: no cover - Windows
+        yield
+        return
+    wait = LOCK_WAIT_SECONDS if wait is None else wait
+    path = lock_path(target)
+    deadline = time.monotonic() + wait
+    while True:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666 & ~_umask())
+        try:
+            while True:
+                try:
+                    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                    break
+                except BlockingIOError:
+                    if time.monotonic() > deadline:
+                        raise OutputError(
+                            f"Another run has been writing into {str(target)!r} for over {wait:g} s "
+                            f"(it holds {path.name}); nothing was written. Run again when it is done."
+                        ) from None
+                    time.sleep(0.02)
+            # the holder before us may have removed the file we locked: then lock the new one
+            try:
+                same = os.path.samestat(os.fstat(fd), os.stat(path))
+            except FileNotFoundError:
+                same = False
+        except BaseException:
+            os.close(fd)
+            raise
+        if same:
+            break
+        os.close(fd)
+    try:
+        yield
+    finally:
+        with contextlib.suppress(OSError):
+            os.unlink(path)  # still holding the lock, so nobody is between open and lock on it
+        os.close(fd)
+
+
+def _signature(path: Path) -> tuple | None:
+    """What tells whether a file was changed or replaced: inode, size, modification time."""
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        return None
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
 
 
 def output_format(path: str, what: str = "table") -> str:
@@ -269,12 +343,32 @@ def write_output(
         write_stdout(frame, stdout_format(what, stdout_as), layer_name)
         return "standard output"
     target = Path(path)
+    with writer_lock(target):
+        # checked again under the lock: a run that finished meanwhile may have added the table
+        check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields)
+        for _ in range(_FOREIGN_CHANGE_RETRIES):
+            if _write_once(frame, path, target, kind, fields, layer_name):
+                break
+        else:
+            raise OutputError(
+                f"{path!r} was changed by another program each time while this table was being "
+                f"added ({_FOREIGN_CHANGE_RETRIES} tries); nothing was written and its changes are "
+                "kept. Run again when the other program is done with it."
+            )
+    if kind == "gpkg":
+        return f"{'table' if what == 'table' else 'layer'} {layer_name!r} in {path}"
+    return str(path)
+
+
+def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: str) -> bool:
+    """One copy-write-rename; False (and nothing written) if another program changed the target."""
     scratch = None
     try:
         scratch = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent))
         tmp = scratch / target.name
+        before = _signature(target)
         if kind == "gpkg":
-            if target.exists():
+            if before is not None:
                 shutil.copyfile(target, tmp)
                 shutil.copymode(target, tmp)
             pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG")
@@ -297,6 +391,8 @@ def write_output(
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
         _check_written(tmp, kind, len(frame), len(fields), layer_name, path)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
+        if kind == "gpkg" and _signature(target) != before:
+            return False  # another program wrote into it meanwhile: our copy lacks its change
         _move_into_place(produced, target.parent, scratch)
     except BaseException as exc:
         if isinstance(exc, (OutputError, KeyboardInterrupt, SystemExit)):
@@ -309,6 +405,4 @@ def write_output(
     finally:
         if scratch is not None:
             shutil.rmtree(scratch, ignore_errors=True)
-    if kind == "gpkg":
-        return f"{'table' if what == 'table' else 'layer'} {layer_name!r} in {path}"
-    return str(path)
+    return True
