@@ -169,6 +169,38 @@ def test_name_clash_with_a_builtin_is_skipped(cli, tmp_path, homes_gpkg):
     assert "already taken" in proc.stderr
 
 
+SECOND_SCRIPT = """
+    [[scripts]]
+    name = "centroid-count"
+    summary = "Number of points of a layer and their mean position."
+    module = "demo_pack.counting"
+    function = "centroid_count"
+    params = ["data", "layer"]
+    """
+
+
+@pytest.mark.parametrize("name", ["list", "describe"])
+def test_pack_script_named_like_a_command_is_refused_alone(cli, tmp_path, homes_gpkg, name):
+    # a pack naming a script like one of the command line's own commands used to crash every
+    # command ("conflicting subparser"); now that one script is skipped with a warning
+    root = tmp_path / "site"
+    root.mkdir()
+    clash = DEMO_MANIFEST.replace('name = "centroid-count"', f'name = "{name}"') + SECOND_SCRIPT
+    make_pack(
+        root, "clash_pack", clash.replace("demo_pack.", "clash_pack."), {"counting": DEMO_MODULE}, "clash"
+    )
+    env = {"PYTHONPATH": str(root)}
+    listed = cli("list", env=env)
+    assert listed.returncode == 0, listed.stderr
+    assert "Traceback" not in listed.stderr and f"Skipping script {name!r}" in listed.stderr
+    assert "command of pairspread itself" in listed.stderr
+    names = [line.split()[0] for line in listed.stdout.splitlines()]
+    assert "centroid-count" in names and name not in names  # the pack's other script stays
+    ran = cli("centroid-count", homes_gpkg.path, "--layer", "homes", env=env)
+    assert ran.returncode == 0, ran.stderr
+    assert cli("describe", "group-spread", env=env).returncode == 0
+
+
 def test_console_script_and_builtin_scripts_are_registered():
     dist = importlib.metadata.distribution("pairspread")
     console = {ep.name: ep.value for ep in dist.entry_points if ep.group == "console_scripts"}

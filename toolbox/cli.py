@@ -78,6 +78,14 @@ def build_parser() -> argparse.ArgumentParser:
     chain.add_argument("--quiet", action="store_true", help="No progress bars and no messages on success.")
     chain.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
     for script in scripts().values():
+        if script.name in sub.choices:  # a pack's script named like a command: refuse that one
+            warnings.warn(
+                f"Skipping script {script.name!r} of pack {script.pack!r}: {script.name!r} is a "
+                f"command of pairspread itself ({', '.join(sub.choices)}); the pack should rename it.",
+                UserWarning,
+                stacklevel=2,
+            )
+            continue
         sp = sub.add_parser(script.name, help=script.summary, description=script.summary)
         for p in script.params:
             _add_param(sp, p)

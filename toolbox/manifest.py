@@ -25,6 +25,8 @@ from .errors import ManifestError, ParameterError
 __all__ = ["ENTRY_POINT_GROUP", "KINDS", "KIND_MEANINGS", "DATASET_KINDS", "RESULT_KINDS", "Param", "Script", "scripts", "get_script", "validate"]
 
 ENTRY_POINT_GROUP = "pairspread.scripts"
+#: names of the command line's own commands, which no script may take
+RESERVED_NAMES = ("list", "describe", "chain", "help")
 #: every parameter kind, with what its value is; the CLI, the Python API, the docs and
 #: ``describe --json`` read the kind to know how to take and show a value
 KIND_MEANINGS = {
@@ -221,6 +223,13 @@ def scripts() -> dict[str, Script]:
             warnings.warn(f"Skipping the {where}: {exc}", stacklevel=2)
             continue
         for script in parsed:
+            if script.name in RESERVED_NAMES:
+                warnings.warn(
+                    f"Skipping script {script.name!r} of the {where}: {script.name!r} is a command "
+                    f"of pairspread itself ({', '.join(RESERVED_NAMES)}); the pack should rename it.",
+                    stacklevel=2,
+                )
+                continue
             if script.name in found:
                 warnings.warn(
                     f"Skipping script {script.name!r} of the {where}: the name is already taken.",
