@@ -298,14 +298,27 @@ def test_unknown_script(fails):
     ids=["no-input", "unknown-option"],
 )
 def test_command_line_mistakes_are_one_line(capfd, args, needle):
-    # argparse's own errors (missing DATASET, unknown option) keep to one line too
-    with pytest.raises(SystemExit) as stopped:
-        main(args)
-    assert stopped.value.code != 0
+    # argparse's own errors (missing DATASET, unknown option) keep to one line too, and main()
+    # returns their exit status like any other mistake's
+    assert main(args) == 2
     out, err = capfd.readouterr()
     lines = err.splitlines()
     assert out == "" and len(lines) == 1 and re.match(r"pairspread( group-spread)?: error: ", lines[0]), err
     assert needle in lines[0]
+
+
+def test_required_option_shows_as_required_in_help(capsys):
+    # point-remoteness cannot print its result (a layer), so --output is required on the command
+    # line: the usage line must not show it in brackets as an optional one
+    with pytest.raises(SystemExit) as stopped:
+        main(["point-remoteness", "--help"])
+    assert stopped.value.code == 0
+    text = capsys.readouterr().out
+    usage = " ".join(text.split("\n\n")[0].split())  # the usage paragraph, unwrapped
+    assert "--output PATH" in usage and "[--output PATH]" not in usage, usage
+    assert "[--output-layer NAME]" in usage  # a really optional one keeps its brackets
+    assert main(["point-remoteness", "x.gpkg"]) == 2
+    assert "required: --output" in capsys.readouterr().err
 
 
 # --------------------------------------------------------------------------------------------

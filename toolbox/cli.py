@@ -15,16 +15,20 @@ import warnings
 from collections.abc import Sequence
 
 from . import __version__
-from .errors import PairspreadError
+from .errors import PairspreadError, ParameterError
 from .manifest import Param, Script, get_script, scripts
 from .runner import run_script
 
 __all__ = ["main", "build_parser"]
 
 
+class UsageError(ParameterError):
+    """A command line argparse cannot take (unknown option, missing value)."""
+
+
 class _Parser(argparse.ArgumentParser):
-    def error(self, message: str):  # one line, not a usage dump
-        self.exit(2, f"pairspread: error: {message} (see {self.prog} --help)\n")
+    def error(self, message: str):  # one line, not a usage dump; main() prints it
+        raise UsageError(f"{message} (see {self.prog} --help)")
 
 
 def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
@@ -36,6 +40,9 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
     elif p.kind == "flag":
         parser.add_argument(p.option, dest=p.name, action="store_true", default=None, help=help_text)
     else:
+        required = p.required or p.cli_required
+        if required:
+            help_text += " Required."
         metavar = {
             "columns": "F1,F2",
             "column": "FIELD",
@@ -47,7 +54,9 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
         }.get(p.kind)
         if p.kind == "choice":
             metavar = "{" + "|".join(p.choices) + "}"
-        parser.add_argument(p.option, dest=p.name, metavar=metavar or p.name.upper(), help=help_text)
+        parser.add_argument(
+            p.option, dest=p.name, metavar=metavar or p.name.upper(), required=required, help=help_text
+        )
 
 
 def build_parser() -> argparse.ArgumentParser:
