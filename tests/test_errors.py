@@ -307,6 +307,16 @@ def test_command_line_mistakes_are_one_line(capfd, args, needle):
     assert needle in lines[0]
 
 
+@pytest.mark.parametrize("short", ["--group", "--group-b", "--tol", "--over"])
+def test_shortened_options_are_refused(capfd, homes_gpkg, short):
+    # argparse would take --group for --group-by (prefix matching), so a typo could quietly
+    # select another option; every option must be spelled out
+    value = {"--tol": ["0"], "--over": []}.get(short, ["zone"])
+    assert main(["group-spread", *homes_gpkg.args, short, *value, "--output", "-"]) == 2
+    out, err = capfd.readouterr()
+    assert out == "" and f"unrecognized arguments: {short}" in err
+
+
 def test_required_option_shows_as_required_in_help(capsys):
     # point-remoteness cannot print its result (a layer), so --output is required on the command
     # line: the usage line must not show it in brackets as an optional one

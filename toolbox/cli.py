@@ -27,6 +27,11 @@ class UsageError(ParameterError):
 
 
 class _Parser(argparse.ArgumentParser):
+    def __init__(self, *args, **kwargs):
+        # no prefix matching: a shortened or mistyped option must not quietly select another
+        kwargs.setdefault("allow_abbrev", False)
+        super().__init__(*args, **kwargs)
+
     def error(self, message: str):  # one line, not a usage dump; main() prints it
         raise UsageError(f"{message} (see {self.prog} --help)")
 
