@@ -406,14 +406,16 @@ def test_existing_table_without_overwrite(fails, homes_gpkg, tmp_path):
     )
 
 
-def test_output_never_replaces_the_input_layer(fails, homes_gpkg):
+@pytest.mark.parametrize("name", ["homes", "HOMES", "Homes"])
+def test_output_never_replaces_the_input_layer(fails, homes_gpkg, name):
+    # GeoPackage layer names ignore case, so every spelling of the input layer is the input
     fails(
         "group-spread",
         *homes_gpkg.args,
         "--output",
         homes_gpkg.path,
         "--output-layer",
-        "homes",
+        name,
         "--overwrite",
         match=["would replace the input", "--output-layer"],
     )

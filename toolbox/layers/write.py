@@ -243,7 +243,8 @@ def check_output(
         if same and kind == "gpkg" and in_layer is None:
             names = _gpkg_layers(target)  # the layer that will be read is the only one
             in_layer = names[0] if len(names) == 1 else None
-        if same and (kind != "gpkg" or in_layer == layer_name):
+        # GeoPackage table names ignore case (SQLite), so 'HOMES' is the layer 'homes'
+        if same and (kind != "gpkg" or (in_layer or "").lower() == layer_name.lower()):
             raise OutputError(
                 f"The output {path!r} would replace the input; choose another "
                 f"{'--output-layer' if kind == 'gpkg' else '--output'}."
