@@ -432,21 +432,36 @@ def test_output_gpkg_that_is_not_a_geopackage(fails, homes_gpkg, tmp_path):
     )
 
 
-def test_failure_during_write_leaves_nothing(fails, homes_gpkg, tmp_path):
-    # GeoPackage table names are case-insensitive (SQLite), so 'HOMES' collides with 'homes'
-    # only when GDAL creates the table: the failure happens inside the write itself.
+@pytest.mark.parametrize("when", ["adding the table", "after the table is in the copy"])
+def test_failure_during_write_leaves_nothing(fails, homes_gpkg, tmp_path, monkeypatch, when):
+    # GDAL fails inside the write itself: the project GeoPackage must stay byte for byte as it was
+    # (checked by `fails`), no scratch copy may remain, and the message must give GDAL's reason
+    # without blaming the disk, which is not the cause here
+    from toolbox.layers import write as write_module
+
     target = tmp_path / "project.gpkg"
     shutil.copyfile(homes_gpkg.path, target)
-    fails(
+    real = write_module.pyogrio.write_dataframe
+    written_to = []
+
+    def failing(frame, path, **kwargs):
+        written_to.append(Path(path))
+        if when == "after the table is in the copy":
+            real(frame, path, **kwargs)
+        raise pyogrio.errors.DataSourceError("sqlite3_step() failed: constraint violated")
+
+    monkeypatch.setattr(write_module.pyogrio, "write_dataframe", failing)
+    line = fails(
         "group-spread",
         *homes_gpkg.args,
         "--output",
         target,
         "--output-layer",
-        "HOMES",
-        match=["HOMES"],
-        subprocess="script",
+        "spread",
+        match=["Writing", "project.gpkg", "constraint violated", "nothing was written"],
     )
+    assert written_to and written_to[0] != target and written_to[0].parent.parent == tmp_path
+    assert not re.search(r"disk|ulimit|file-size", line, re.IGNORECASE), line
 
 
 @pytest.mark.parametrize("suffix", [".gpkg", ".csv", ".parquet"])

@@ -4,7 +4,9 @@ touching layers that were already there."""
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
+import re
 import shutil
 import tempfile
 import time
@@ -270,7 +272,36 @@ def check_output(
         raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
 
 
-def _check_written(tmp: Path, kind: str, rows: int, columns: int, layer_name: str, path: str) -> None:
+def _disk_cause(folder: Path | None, exc: BaseException | None = None) -> str:
+    """A sentence on the disk or a file-size limit, when one of them can be behind a failed write.
+
+    Only then may a message blame the disk: from the error number, the disk's free space or a
+    file-size limit set on this process (GDAL reports some of these only as a failed SQLite call).
+    """
+    code = exc.errno if isinstance(exc, OSError) else None
+    full = code in (errno.ENOSPC, errno.EDQUOT)
+    if folder is not None and folder.exists():
+        full = full or shutil.disk_usage(folder).free < 1 << 20
+    if full:
+        return " The disk is full (or a quota is reached): free space and run again."
+    try:
+        import resource
+
+        limit = resource.getrlimit(resource.RLIMIT_FSIZE)[0]
+    except (ImportError, OSError):  # pragma: no cover - Windows
+        limit = None
+    if code == errno.EFBIG or (limit is not None and limit != resource.RLIM_INFINITY):
+        shown = f" of {limit:,} bytes" if limit not in (None, resource.RLIM_INFINITY) else ""
+        return (
+            f" A file-size limit{shown} applies to this process (ulimit -f) and the output may need "
+            "more: raise the limit and run again."
+        )
+    if exc is not None and re.search(r"disk (I/O error|is full)|no space|quota", str(exc), re.I):
+        return " The disk is full or failing: check it and run again."
+    return ""
+
+
+def _check_written(tmp: Path, kind: str, rows: int, fields: Sequence[str], layer_name: str, path: str) -> None:
     """Read back what was written: some writers ignore a failed write (a full disk) on close."""
     if kind in ("csv", "parquet"):
         return
@@ -279,12 +310,17 @@ def _check_written(tmp: Path, kind: str, rows: int, columns: int, layer_name: st
     except Exception as exc:
         raise OutputError(
             f"The output could not be read back ({_first_line(exc)}); nothing was written."
+            + _disk_cause(tmp.parent, exc)
         ) from exc
-    if info["features"] != rows or len(info["fields"]) != columns:
+    got = [str(f) for f in info["fields"]]
+    if info["features"] != rows or len(got) != len(fields):
+        missing = [f for f in fields if f.lower() not in {g.lower() for g in got}]
+        what = f"{info['features']} of {rows} rows, {len(got)} of {len(fields)} fields"
+        if missing:
+            what += " (missing: " + ", ".join(repr(f) for f in missing[:5]) + ")"
         raise OutputError(
-            f"Writing {path!r} failed: only part of it could be written ({info['features']} of {rows} rows, "
-            f"{len(info['fields'])} of {columns} fields read back; is the disk full or a "
-            "file-size limit set?); nothing was written."
+            f"Writing {path!r} failed: only part of it could be written ({what} read back); "
+            "nothing was written." + _disk_cause(tmp.parent)
         )
 
 
@@ -390,7 +426,7 @@ def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: s
                 )
             out = frame.rename(columns=renamed)
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
-        _check_written(tmp, kind, len(frame), len(fields), layer_name, path)
+        _check_written(tmp, kind, len(frame), [str(f) for f in fields], layer_name, path)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
         if kind == "gpkg" and _signature(target) != before:
             return False  # another program wrote into it meanwhile: our copy lacks its change
@@ -400,8 +436,8 @@ def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: s
             raise
         reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else _first_line(exc)
         raise OutputError(
-            f"Writing {path!r} failed: {reason}; nothing was written. If the disk is full or a "
-            "file-size limit applies (ulimit -f), free space or raise the limit and run again."
+            f"Writing {path!r} failed: {reason}; nothing was written."
+            + _disk_cause(scratch, exc)
         ) from exc
     finally:
         if scratch is not None:
