@@ -372,6 +372,21 @@ def test_unknown_output_suffix(fails, homes_gpkg, tmp_path):
     )
 
 
+@pytest.mark.parametrize("script", ["group-spread", "cross-spread"])
+@pytest.mark.parametrize("suffix", [".shp", ".geojson"])
+def test_table_script_asked_for_a_layer_format(fails, homes_gpkg, tmp_path, script, suffix):
+    # the suffix is known, just not for a table: say so and list what a table can be written as
+    fails(
+        script,
+        *homes_gpkg.args,
+        "--group-by",
+        "zone",
+        "--output",
+        tmp_path / f"out{suffix}",
+        match=["writes a table", "without geometry", re.escape(suffix), r"\.gpkg, \.csv, \.parquet"],
+    )
+
+
 def test_output_is_a_folder(fails, homes_gpkg, tmp_path):
     (tmp_path / "out.csv").mkdir()
     fails("group-spread", *homes_gpkg.args, "--output", tmp_path / "out.csv", match=["is a folder"])

@@ -114,6 +114,12 @@ def output_format(path: str, what: str = "table") -> str:
     if path == "-":
         return "stdout"
     suffix = Path(path).suffix.lower()
+    if what == "table" and suffix in LAYER_FORMATS and suffix not in formats:
+        raise OutputError(
+            f"This script writes a table of numbers per group, without geometry, so it cannot be "
+            f"written as {path!r} ({suffix} holds features with geometry); end the output with "
+            f"{', '.join(formats)}, or use '-' for CSV on standard output."
+        )
     if suffix not in formats:
         raise OutputError(
             f"Cannot tell the output format of {path!r}; end it with {', '.join(formats)} "
