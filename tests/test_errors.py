@@ -516,7 +516,9 @@ def test_successful_runs_leave_inputs_unchanged(capfd, homes_file, tmp_path):
 
 
 def test_api_errors_are_exceptions_of_one_root(homes, tmp_path):
-    with pytest.raises(toolbox.ParameterError, match=r"--tolerance .* in \[0, 0\.5\]\. Got 0\.7 instead"):
+    with pytest.raises(
+        toolbox.ParameterError, match=r"keyword argument 'tolerance' .* in \[0, 0\.5\]\. Got 0\.7 instead"
+    ):
         toolbox.group_spread(homes, tolerance=0.7)
     with pytest.raises(toolbox.InputError, match="does not exist"):
         toolbox.group_spread(tmp_path / "missing.gpkg")
@@ -525,6 +527,39 @@ def test_api_errors_are_exceptions_of_one_root(homes, tmp_path):
     for error in (toolbox.ParameterError, toolbox.InputError, toolbox.GeometryError, toolbox.OutputError):
         assert issubclass(error, toolbox.PairspreadError)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_messages_speak_the_callers_language(homes_gpkg, tmp_path, capfd):
+    # the same mistakes from Python and from the command line: keyword arguments in the one,
+    # options in the other, never the other's spelling
+    existing = tmp_path / "out.csv"
+    existing.write_text("kept\n")
+    python_cases = [
+        (lambda: toolbox.group_spread(homes_gpkg.path, layer="homes", output=existing), "overwrite=True"),
+        (lambda: toolbox.group_spread(homes_gpkg.path), "choose one with 'layer'"),
+        (lambda: toolbox.group_spread(homes_gpkg.path, layer="homes", tolerance=2), "keyword argument 'tolerance'"),
+        (lambda: toolbox.run("group-spread", data=homes_gpkg.path, layer="homes", output=existing), "overwrite=True"),
+    ]
+    for call, said in python_cases:
+        with pytest.raises(toolbox.PairspreadError) as raised:
+            call()
+        assert said in str(raised.value) and "--" not in str(raised.value), str(raised.value)
+    cli_cases = [
+        (["--layer", "homes", "--output", str(existing)], "pass --overwrite"),
+        ([], "choose one with --layer"),
+        (["--layer", "homes", "--tolerance", "2"], "option --tolerance"),
+    ]
+    for extra, said in cli_cases:
+        assert main(["group-spread", str(homes_gpkg.path), *extra]) == 2
+        err = capfd.readouterr().err
+        assert said in err and "=" not in err.split("Got")[0], err
+    assert existing.read_text() == "kept\n"
+
+
+def test_api_docstring_states_python_types():
+    doc = toolbox.group_spread.__doc__
+    assert "threads : int" in doc and "tolerance : float" in doc and "overwrite : bool" in doc
+    assert "data : str, os.PathLike or geopandas.GeoDataFrame" in doc
 
 
 def test_geodataframe_without_points(homes):

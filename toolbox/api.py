@@ -17,12 +17,23 @@ from .runner import run_script
 __all__ = ["script_function"]
 
 
+#: the Python type of each parameter kind, as the generated docstrings state it
+_PYTHON_TYPES = {
+    "dataset": "str, os.PathLike or geopandas.GeoDataFrame",
+    "second-dataset": "str, os.PathLike or geopandas.GeoDataFrame",
+    "columns": "str or list of str",
+    "number": "float",
+    "integer": "int",
+    "flag": "bool",
+    "result-table-file": "str or os.PathLike",
+    "result-layer-file": "str or os.PathLike",
+}
+
+
 def _docstring(script: Script) -> str:
     lines = [script.summary, "", "Parameters", "----------"]
     for p in script.params:
-        kind = {"columns": "str or list of str", "number": "float", "flag": "bool"}.get(p.kind, "str")
-        if p.kind == "dataset":
-            kind = "str, os.PathLike or geopandas.GeoDataFrame"
+        kind = _PYTHON_TYPES.get(p.kind, "str")
         if p.kind == "choice":
             kind = "{" + ", ".join(repr(c) for c in p.choices) + "}"
         default = "" if p.kind == "dataset" else f", default {p.default!r}"

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from .errors import InputError, spell
 
 __all__ = ["Grouping", "group_features", "feature_weights", "planar_units", "group_namer"]
 
@@ -83,7 +83,7 @@ def feature_weights(attributes: pd.DataFrame, field: str | None, label: str) -> 
             raise InputError(
                 f"{rows.size} feature(s) of {label} have a {what} weight in {field!r} (rows "
                 f"{shown}{', ...' if rows.size > 5 else ''}); weights must be finite and "
-                "non-negative: fix them or filter them out with --where."
+                f"non-negative: fix them or filter them out with {spell('where')}."
             )
     return values
 
@@ -107,7 +107,7 @@ def planar_units(crs, label: str) -> str:
         raise InputError(
             f"{label} is in a geographic CRS ({crs.name}), so its coordinates are degrees and planar "
             "distances would be wrong; use geodesic distances (the default for such layers) or "
-            "reproject it with --crs to a projected CRS in metres (a UTM zone or a national grid)."
+            f"reproject it with {spell('crs')} to a projected CRS in metres (a UTM zone or a national grid)."
         )
     axes = crs.axis_info
     return axes[0].unit_name if axes else "unknown"

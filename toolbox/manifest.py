@@ -20,7 +20,7 @@ from functools import cache
 from importlib.metadata import entry_points
 from typing import Any
 
-from .errors import ManifestError, ParameterError
+from .errors import ManifestError, ParameterError, param_noun
 
 __all__ = ["ENTRY_POINT_GROUP", "KINDS", "KIND_MEANINGS", "DATASET_KINDS", "RESULT_KINDS", "Param", "Script", "scripts", "get_script", "validate"]
 
@@ -251,10 +251,7 @@ def get_script(name: str) -> Script:
 
 
 def _fail(script: Script, p: Param, allowed: str, value: Any) -> ParameterError:
-    return ParameterError(
-        f"The {p.option if p.kind != 'dataset' else 'DATASET'} parameter of {script.name} must be "
-        f"{allowed}. Got {value!r} instead."
-    )
+    return ParameterError(f"The {param_noun(p.name)} of {script.name} must be {allowed}. Got {value!r} instead.")
 
 
 def _convert(script: Script, p: Param, value: Any) -> Any:
@@ -330,9 +327,7 @@ def validate(script: Script, values: Mapping[str, Any], *, cli: bool = False) ->
         value = values.get(p.name)
         if value is None:
             if p.required or p.kind == "dataset" or (cli and p.cli_required):
-                raise ParameterError(
-                    f"{script.name} needs {'DATASET' if p.kind == 'dataset' else p.option}: {p.help}"
-                )
+                raise ParameterError(f"{script.name} needs the {param_noun(p.name)}: {p.help}")
             out[p.name] = [] if p.kind == "columns" and p.default is None else p.default
             continue
         out[p.name] = _convert(script, p, value)

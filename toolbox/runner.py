@@ -11,7 +11,7 @@ import os
 import sys
 from typing import Any
 
-from .errors import ParameterError
+from .errors import ParameterError, speaking, spell
 from .manifest import DATASET_KINDS, Script, get_script, validate
 
 __all__ = ["run", "run_script"]
@@ -59,12 +59,14 @@ def _read_piped(script: Script, values: dict[str, Any]) -> dict[str, Any]:
     chosen = values.get("input_format")
     if len(piped) > 1:
         raise ParameterError(
-            f"{' and '.join(p.option if p.kind != 'dataset' else 'DATASET' for p in piped)} are both '-'; "
+            f"{' and '.join(spell(p.name) for p in piped)} are both '-'; "
             "only one input can come from standard input."
         )
     if not piped:
         if chosen is not None:
-            raise ParameterError("--input-format applies to an input given as '-' (standard input) only.")
+            raise ParameterError(
+                f"{spell('input_format')} applies to an input given as '-' (standard input) only."
+            )
         return values
     from . import layers
 
@@ -76,8 +78,18 @@ def run_script(
 ) -> tuple[Any, str | None]:
     """Run ``script`` with raw parameter values; returns the result and where it was written.
 
-    ``made_in`` (a chain's file and step) is recorded with the output's provenance.
+    ``made_in`` (a chain's file and step) is recorded with the output's provenance. Every
+    message raised below names parameters as the caller writes them: options for the command
+    line (``cli``), keyword arguments for Python (see :func:`toolbox.errors.spell`).
     """
+    positional = {p.name: "DATASET" for p in script.params if p.kind == "dataset"}
+    with speaking("cli" if cli else "python", positional):
+        return _run_script(script, values, cli=cli, made_in=made_in)
+
+
+def _run_script(
+    script: Script, values: dict[str, Any], *, cli: bool, made_in: dict | None
+) -> tuple[Any, str | None]:
     from . import layers  # here, not at the top: the command line's list/--help stay light
     from .kernels import thread_limit
 
@@ -95,7 +107,9 @@ def run_script(
     if output is not None:
         layers.check_output(output, inputs=_inputs(values), **where)
     elif values.get("output_format") is not None:
-        raise ParameterError("--output-format applies to '--output -' (standard output) only.")
+        raise ParameterError(
+            f"{spell('output_format')} applies to {spell('output', '-')} (standard output) only."
+        )
     values = _read_piped(script, values)
     function = script.load()
     call = {k: v for k, v in values.items() if k not in runner_params}

@@ -32,7 +32,7 @@ import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 import shapely
 
-from ..errors import InputError
+from ..errors import InputError, spell
 from .read import (
     PointLayer,
     _check_fields,
@@ -192,7 +192,7 @@ class ArrowLayer:
 
 
 def _failed(label: str, where: str | None, exc: BaseException) -> InputError:
-    hint = " (check that the --where filter compares fields with values of their type)" if where else ""
+    hint = f" (check that the {spell('where')} filter compares fields with values of their type)" if where else ""
     return InputError(f"Reading {label} failed{hint}: {_first_line(exc)}")
 
 

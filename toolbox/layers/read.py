@@ -16,7 +16,7 @@ import pandas as pd
 import pyogrio
 import shapely
 
-from ..errors import GeometryError, InputError, ParameterError
+from ..errors import GeometryError, InputError, ParameterError, param_noun, spell
 
 if TYPE_CHECKING:
     import geopandas
@@ -76,7 +76,7 @@ def _resolve_layer(path: str, layer: str | None) -> str:
     if layer is None:
         if len(names) == 1:
             return names[0]
-        raise InputError(f"{path!r} holds {len(names)} layers ({', '.join(names)}); choose one with --layer.")
+        raise InputError(f"{path!r} holds {len(names)} layers ({', '.join(names)}); choose one with {spell('layer')}.")
     if layer not in names:
         raise InputError(f"{path!r} has no layer {layer!r}; {_suggest(layer, names)}")
     return layer
@@ -96,7 +96,9 @@ def _is_frame(data) -> bool:
 def _open(data, layer, engine, where):
     """Check a path and pick its layer; returns (path, layer name, label, field names)."""
     if engine not in ENGINES:
-        raise ParameterError(f"engine must be one of {', '.join(ENGINES)}. Got {engine!r} instead.")
+        raise ParameterError(
+            f"The {param_noun('engine')} must be one of {', '.join(ENGINES)}. Got {engine!r} instead."
+        )
     path = os.fspath(data)
     if _is_local_path(path) and not Path(path).exists():
         raise InputError(f"Input {path!r} does not exist; check the path.")
@@ -109,14 +111,14 @@ def _open(data, layer, engine, where):
 def _warn_if_nothing_matched(rows: int, where, label):
     if where and rows == 0:
         warnings.warn(
-            f"No feature of {label} matched the --where filter {where!r}.", UserWarning, stacklevel=3
+            f"No feature of {label} matched the {spell('where')} filter {where!r}.", UserWarning, stacklevel=3
         )
 
 
 def _reading_failed(exc, label, where, engine):
     if isinstance(exc, ImportError):
         return InputError(f"The {engine} engine is not installed: {exc}")
-    hint = " (check the --where filter)" if where else ""
+    hint = f" (check the {spell('where')} filter)" if where else ""
     return InputError(f"Reading {label} failed{hint}: {_first_line(exc)}")
 
 
@@ -287,7 +289,7 @@ def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
     if missing.any():
         raise GeometryError(
             f"{int(missing.sum())} of {geometry.size} features of {label} have no geometry "
-            "(null or empty); drop them first, e.g. with --where."
+            f"(null or empty); drop them first, e.g. with {spell('where')}."
         )
     wrong = ~np.isin(types, list(_POINT_TYPES))
     if wrong.any():

@@ -20,7 +20,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..errors import ParameterError
+from ..errors import ParameterError, spell
 
 __all__ = ["parse_where", "filter_table", "filter_frame"]
 
@@ -70,7 +70,7 @@ def _tokens(text: str) -> list[tuple[str, str]]:
 
 def _error(text: str, why: str) -> ParameterError:
     return ParameterError(
-        f"The --where filter {text!r} {why}. Allowed: comparisons (= <> < <= > >=), AND, OR, NOT, "
+        f"The {spell('where')} filter {text!r} {why}. Allowed: comparisons (= <> < <= > >=), AND, OR, NOT, "
         "IN (...), BETWEEN .. AND .., LIKE '..%', IS [NOT] NULL, 'text' and \"field names\"."
     )
 
@@ -242,7 +242,7 @@ def parse_where(text: str, fields: Sequence[str] | None = None) -> pc.Expression
         for name in parser.fields:
             if name not in fields:
                 raise ParameterError(
-                    f"The --where filter {text!r} names field {str(name)!r}, which the layer does "
+                    f"The {spell('where')} filter {text!r} names field {str(name)!r}, which the layer does "
                     f"not have; {_suggest(name, list(fields))}"
                 )
     return expression
@@ -255,7 +255,7 @@ def filter_table(table: pa.Table, where: str, label: str) -> pa.Table:
         return table.filter(expression)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError) as exc:
         raise ParameterError(
-            f"The --where filter {where!r} cannot be applied to {label}: {str(exc).splitlines()[0]} "
+            f"The {spell('where')} filter {where!r} cannot be applied to {label}: {str(exc).splitlines()[0]} "
             "(compare text fields with 'quoted' text and numeric fields with numbers)."
         ) from exc
 
@@ -276,7 +276,7 @@ def filter_frame(frame: pd.DataFrame, where: str, label: str) -> pd.DataFrame:
         table = pa.Table.from_pandas(attributes.reset_index(drop=True), preserve_index=False)
     except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
         raise ParameterError(
-            f"The --where filter cannot read the fields of {label}: {str(exc).splitlines()[0]}."
+            f"The {spell('where')} filter cannot read the fields of {label}: {str(exc).splitlines()[0]}."
         ) from exc
     rows = pa.array(np.arange(len(frame), dtype=np.int64))
     kept = filter_table(table.append_column("__row__", rows), where, label).column("__row__")

@@ -17,7 +17,7 @@ from pathlib import Path
 import pandas as pd
 import pyogrio
 
-from ..errors import OutputError, ParameterError
+from ..errors import OutputError, ParameterError, spell
 from .read import _first_line, _is_frame
 
 __all__ = [
@@ -255,7 +255,7 @@ def check_output(
         if same and (kind != "gpkg" or (in_layer or "").lower() == layer_name.lower()):
             raise OutputError(
                 f"The output {path!r} would replace the input; choose another "
-                f"{'--output-layer' if kind == 'gpkg' else '--output'}."
+                f"{spell('output_layer') if kind == 'gpkg' else spell('output')}."
             )
     if kind == "gpkg":
         if not layer_name:
@@ -264,18 +264,18 @@ def check_output(
             names = [n.lower() for n in _gpkg_layers(target)]  # GeoPackage names ignore case
             if layer_name.lower() in names and not overwrite:
                 raise OutputError(
-                    f"{path!r} already has a layer {layer_name!r}; pass --overwrite to replace it "
-                    "or choose another --output-layer."
+                    f"{path!r} already has a layer {layer_name!r}; pass {spell('overwrite', True)} to "
+                    f"replace it or choose another {spell('output_layer')}."
                 )
         return
     if kind == "shp":
         shapefile_names(fields)  # refuses names that would collide once shortened
         existing = [p for p in _shapefile_parts(target) if p.exists()]
         if existing and not overwrite:
-            raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
+            raise OutputError(f"{path!r} already exists; pass {spell('overwrite', True)} to replace it.")
         return
     if target.exists() and not overwrite:
-        raise OutputError(f"{path!r} already exists; pass --overwrite to replace it.")
+        raise OutputError(f"{path!r} already exists; pass {spell('overwrite', True)} to replace it.")
 
 
 def _disk_cause(folder: Path | None, exc: BaseException | None = None) -> str:
