@@ -5,18 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .. import geodesy, grouping, kernels, layers
+from .. import geodesy, grouping, kernels, layers, tables
 from ..errors import InputError, ParameterError
-
-
-def _labels(keys: pd.DataFrame) -> pd.Series:
-    """One label per group: its value, or its values joined by ' / ' for several fields."""
-    if keys.shape[1] == 0:
-        return pd.Series(["all"] * len(keys), dtype=object)
-    if keys.shape[1] == 1:
-        return keys.iloc[:, 0].astype(object).reset_index(drop=True)
-    text = keys.astype(object).where(keys.notna(), "")
-    return text.astype(str).agg(" / ".join, axis=1).astype(object)
 
 
 def _read(data, layer, group_by, weight, where, engine):
@@ -101,8 +91,8 @@ def cross_spread(
     has_pairs = ~np.isnan(sums.total[a, b])
     table = pd.DataFrame(
         {
-            "from_group": _labels(from_keys).to_numpy()[a],
-            "to_group": _labels(to_keys).to_numpy()[b - (n_from if to is not None else 0)],
+            "from_group": tables.group_labels(from_keys)[a],
+            "to_group": tables.group_labels(to_keys)[b - (n_from if to is not None else 0)],
             "n_from": sums.n_points[a],
             "n_to": sums.n_points[b],
             "total_dist": sums.total[a, b],
@@ -120,14 +110,7 @@ def cross_spread(
     )
     if not wide:
         return table
-    matrix = table.pivot(index="from_group", columns="to_group", values="mean_dist")
-    order_rows = pd.unique(table["from_group"])
-    order_cols = pd.unique(table["to_group"])
-    matrix = matrix.reindex(index=order_rows, columns=order_cols)
-    matrix.columns = [
-        ("(null)" if pd.isna(c) else str(c)) for c in matrix.columns
-    ]  # GDAL drops unnamed fields
-    return matrix.rename_axis("from_group").reset_index()
+    return tables.wide_matrix(table)
 
 
 def _to_crs(second, first, setup, *, explicit):
