@@ -7,6 +7,7 @@ process. Null and empty-text groups must stay apart in every output shape (see t
 
 from __future__ import annotations
 
+import io
 import sqlite3
 
 import geopandas as gpd
@@ -98,3 +99,49 @@ def test_wide_matrix_of_awkward_groups(capsys, tmp_path, awkward, suffix):
             assert pd.isna(labels[i]) if a is None else labels[i] == a
         for name, b in groups.items():
             np.testing.assert_allclose(wide[name].iloc[i], _mean_between(frame, a, b), rtol=1e-10)
+
+
+def test_null_and_empty_groups_stay_apart_in_every_output(capsys, tmp_path, awkward):
+    path, frame = awkward
+    base = ["--group-by", "site", "--tolerance", "0", "--quiet"]
+    # the printed table: (null) for the null group, "" for the empty one
+    out, _ = _run(capsys, "group-spread", path, *base)
+    first = [line.split()[0] for line in out.splitlines()[1:]]
+    assert '""' in first and "(null)" in first
+    # CSV: an empty field for null, a quoted empty text for ""
+    out, _ = _run(capsys, "group-spread", path, *base, "--output", "-")
+    rows = out.splitlines()[1:]
+    assert sum(r.startswith('"",') for r in rows) == 1 and sum(r.startswith(",") for r in rows) == 1
+    table = pd.read_csv(io.StringIO(out))
+    assert table["n_points"].sum() == len(frame) and len(table) == len(SITES)
+    # long cross-spread rows in a GeoPackage: NULL and '' as they were in the input
+    target = tmp_path / "long.gpkg"
+    _run(capsys, "cross-spread", path, *base, "--output", target)
+    with sqlite3.connect(target) as con:
+        pairs = con.execute("SELECT from_group, to_group, mean_dist FROM cross_spread").fetchall()
+    assert len(pairs) == len(SITES) ** 2
+    for a, b, mean in pairs:
+        assert a in SITES and b in SITES
+        np.testing.assert_allclose(mean, _mean_between(frame, a, b), rtol=1e-10)
+    # long cross-spread as CSV: from_group is "" for one group and empty for the other
+    out, _ = _run(capsys, "cross-spread", path, *base, "--output", "-")
+    starts = [r.split(",")[0] for r in out.splitlines()[1:]]
+    assert starts.count('""') == len(SITES) and starts.count("") == len(SITES)
+
+
+def test_labels_of_several_fields_keep_null_and_empty_apart(capsys, tmp_path):
+    rng = np.random.default_rng(5)
+    a = ["x", "x", None, "", "x / y"]
+    b = ["", None, "y", "y", "z"]
+    n = 4
+    frame = gpd.GeoDataFrame(
+        {"a": np.repeat(np.array(a, dtype=object), n), "b": np.repeat(np.array(b, dtype=object), n)},
+        geometry=shapely.points(500_000 + rng.uniform(0, 900, n * 5), 6_120_000 + rng.uniform(0, 900, n * 5)),
+        crs=CRS,
+    )
+    path = tmp_path / "two.gpkg"
+    pyogrio.write_dataframe(frame, path, driver="GPKG")
+    out, _ = _run(capsys, "cross-spread", path, "--group-by", "a,b", "--quiet", "--output", "-")
+    labels = pd.read_csv(io.StringIO(out), keep_default_na=False)["from_group"].unique().tolist()
+    assert len(labels) == 5  # five groups, five different labels
+    assert set(labels) == {"x / ", "x / (null)", "(null) / y", " / y", "x / y / z"}

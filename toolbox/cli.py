@@ -127,10 +127,9 @@ def _describe_text(script: Script) -> str:
 def _print_table(table) -> None:
     import pandas as pd
 
-    shown = table.copy()
-    for column in shown.columns:  # a null group key reads as empty, as in the CSV output
-        if not pd.api.types.is_numeric_dtype(shown[column]):
-            shown[column] = shown[column].astype(object).where(shown[column].notna(), "")
+    from .tables import for_display
+
+    shown = for_display(table)  # a null group and an empty-text one print differently
     if shown.empty:  # the header alone, not pandas' "Empty DataFrame" text
         print("  ".join(str(c) for c in shown.columns))
         return

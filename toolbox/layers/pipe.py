@@ -15,7 +15,8 @@ from typing import BinaryIO
 import pandas as pd
 import pyarrow as pa
 
-from ..errors import InputError, OutputError, ParameterError
+from ..errors import InputError, OutputError, ParameterError, param_noun
+from ..tables import csv_text
 from .parquet import ArrowLayer, arrow_layer
 from .read import _first_line, _is_frame
 
@@ -124,12 +125,12 @@ def to_bytes(frame: pd.DataFrame, output_format: str, layer_name: str = "") -> b
     """
     if output_format not in STDOUT_FORMATS:
         raise ParameterError(
-            f"The --output-format parameter must be one of {', '.join(STDOUT_FORMATS)}. "
+            f"The {param_noun('output_format')} must be one of {', '.join(STDOUT_FORMATS)}. "
             f"Got {output_format!r} instead."
         )
     buffer = io.BytesIO()
-    if output_format == "csv":
-        frame.to_csv(buffer, index=False)
+    if output_format == "csv":  # a null and an empty text written apart (toolbox.tables)
+        buffer.write(csv_text(frame).encode("utf-8"))
     elif output_format == "geojson":
         import pyogrio
 

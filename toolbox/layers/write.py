@@ -18,6 +18,7 @@ import pandas as pd
 import pyogrio
 
 from ..errors import OutputError, ParameterError, spell
+from ..tables import csv_text
 from .read import _first_line, _is_frame
 
 __all__ = [
@@ -416,7 +417,7 @@ def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: s
                 shutil.copymode(target, tmp)
             pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG")
         elif kind == "csv":
-            frame.to_csv(tmp, index=False)
+            tmp.write_text(csv_text(frame), encoding="utf-8")
         elif kind == "parquet":
             frame.to_parquet(tmp, index=False)
         elif kind == "geojson":
