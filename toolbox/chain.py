@@ -385,7 +385,7 @@ def _check_steps(ordered: list[Step], steps: dict[str, Step], place: _Place) -> 
         try:
             layers.check_output(
                 output,
-                what="layer" if target.kind == "output-layer" or _produces_layer(step, steps) else "table",
+                what="layer" if target.kind == "result-layer-file" or _produces_layer(step, steps) else "table",
                 layer_name=checked.get("output_layer") or "",
                 overwrite=bool(checked.get("overwrite")),
                 inputs=inputs,

@@ -15,7 +15,7 @@ from typing import BinaryIO
 import pandas as pd
 import pyarrow as pa
 
-from ..errors import InputError, OutputError, ParameterError, param_noun
+from ..errors import InputError, OutputError, ParameterError, param_noun, spell
 from ..tables import csv_text
 from .parquet import ArrowLayer, arrow_layer
 from .read import _first_line, _is_frame
@@ -75,8 +75,8 @@ def layer_from_bytes(raw: bytes, input_format: str | None = None, label: str = _
         )
     if kind is None:
         raise InputError(
-            f"Cannot tell the format of {label} (it begins with {raw[:12]!r}); pass --input-format "
-            f"{'|'.join(INPUT_FORMATS)}."
+            f"Cannot tell the format of {label} (it begins with {raw[:12]!r}); pass "
+            f"{spell('input_format', '|'.join(INPUT_FORMATS))}."
         )
     try:
         if kind == "geoparquet":
@@ -100,7 +100,7 @@ def layer_from_bytes(raw: bytes, input_format: str | None = None, label: str = _
     except Exception as exc:  # each reader has its own error classes; all mean "not that format"
         raise InputError(
             f"Cannot read {label} as {kind}: {_first_line(exc)}; check what is piped in"
-            f"{'' if input_format else ' or pass --input-format'}."
+            f"{'' if input_format else ' or pass ' + spell('input_format')}."
         ) from exc
     return arrow_layer(table, label)
 

@@ -17,7 +17,7 @@ from pathlib import Path
 import pandas as pd
 import pyogrio
 
-from ..errors import OutputError, ParameterError, spell
+from ..errors import OutputError, ParameterError, param_noun, spell
 from ..tables import csv_text
 from .read import _first_line, _is_frame
 
@@ -135,7 +135,8 @@ def stdout_format(what: str = "table", chosen: str | None = None) -> str:
 
     if chosen is not None and chosen not in STDOUT_FORMATS:
         raise ParameterError(
-            f"The --output-format parameter must be one of {', '.join(STDOUT_FORMATS)}. Got {chosen!r} instead."
+            f"The {param_noun('output_format')} must be one of {', '.join(STDOUT_FORMATS)}. "
+            f"Got {chosen!r} instead."
         )
     return chosen or ("csv" if what == "table" else "geojson")
 
@@ -240,8 +241,8 @@ def check_output(
         return
     if stdout_as is not None:
         raise ParameterError(
-            f"--output-format chooses the format of '--output -' only; the suffix of {path!r} "
-            "chooses its format. Leave out --output-format or write to '-'."
+            f"{spell('output_format')} chooses the format of {spell('output', '-')} only; the suffix "
+            f"of {path!r} chooses its format. Leave out {spell('output_format')} or write to '-'."
         )
     target = Path(path)
     _check_folder(target)
