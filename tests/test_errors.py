@@ -556,6 +556,16 @@ def test_messages_speak_the_callers_language(homes_gpkg, tmp_path, capfd):
     assert existing.read_text() == "kept\n"
 
 
+def test_messages_on_the_command_line_read_as_sentences(capfd, homes_gpkg):
+    # errors and warnings used to begin with a capital or not depending on where they came from
+    assert main(["group-spread", *homes_gpkg.args, "--weight", "popp"]) == 2
+    line = capfd.readouterr().err.strip()
+    assert line.startswith("pairspread: error: Layer 'homes' of "), line
+    assert main(["group-spread", *homes_gpkg.args, "--group-by", "zone", "--where", "pop < 0"]) == 0
+    err = capfd.readouterr().err
+    assert "pairspread: warning: No feature of layer 'homes'" in err, err
+
+
 def test_api_docstring_states_python_types():
     doc = toolbox.group_spread.__doc__
     assert "threads : int" in doc and "tolerance : float" in doc and "overwrite : bool" in doc

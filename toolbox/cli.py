@@ -15,7 +15,7 @@ import warnings
 from collections.abc import Sequence
 
 from . import __version__
-from .errors import PairspreadError, ParameterError
+from .errors import PairspreadError, ParameterError, sentence
 from .manifest import Param, Script, get_script, scripts
 from .runner import run_script
 
@@ -177,7 +177,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         except PairspreadError as exc:
             if debug:
                 raise
-            print(f"pairspread: error: {exc}", file=sys.stderr)
+            print(f"pairspread: error: {sentence(str(exc))}", file=sys.stderr)
             return exc.exit_code
         except KeyboardInterrupt:
             print("pairspread: interrupted; no output was written.", file=sys.stderr)
@@ -199,4 +199,4 @@ def main(argv: Sequence[str] | None = None) -> int:
                 text = str(w.message)
                 if issubclass(w.category, UserWarning) and text not in shown:
                     shown.add(text)
-                    print(f"pairspread: warning: {text}", file=sys.stderr)
+                    print(f"pairspread: warning: {sentence(text)}", file=sys.stderr)

@@ -18,6 +18,7 @@ from collections.abc import Iterator
 from typing import Any
 
 __all__ = [
+    "sentence",
     "spell",
     "param_noun",
     "speaking",
@@ -28,6 +29,26 @@ __all__ = [
     "OutputError",
     "ManifestError",
 ]
+
+
+def sentence(text: str) -> str:
+    """A message as a sentence: its first word capitalised, unless that word is a name.
+
+    Messages often begin with a label ("layer 'homes' of 'x.gpkg' has ..."); the command line
+    prints every error and warning through this, so they all read as sentences. Quoted values, options (``--crs``), names with
+    ``-``, ``_`` or digits and one-letter names (``x``) are left as written.
+
+    Examples
+    --------
+    >>> sentence("layer 'homes' of 'x.gpkg' has no field 'pop'")
+    "Layer 'homes' of 'x.gpkg' has no field 'pop'"
+    >>> sentence("'x.gpkg' already exists"), sentence("cross-spread needs --to"), sentence("x and y")
+    ("'x.gpkg' already exists", 'cross-spread needs --to', 'x and y')
+    """
+    word = text.split(" ", 1)[0]
+    if len(word) > 1 and word.isalpha() and word.islower():
+        return text[0].upper() + text[1:]
+    return text
 
 
 class PairspreadError(Exception):
