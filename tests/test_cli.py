@@ -510,6 +510,14 @@ def test_kinds_and_positional_are_the_packs_own(run_main, capsys):
         assert stopped.value.code == 0 and "DATASET" in out and "INPUT" not in out
 
 
+def test_engine_help_states_that_fiona_is_slow(run_main):
+    # measured in this repository (100,000 points: about 100 times pyogrio's time); a user who
+    # picks fiona must be told before waiting minutes
+    code, out, _ = run_main("describe", "group-spread", "--json")
+    engine = next(p for p in json.loads(out)["params"] if p["name"] == "engine")
+    assert "fiona is far slower" in engine["help"] and "100 times" in engine["help"]
+
+
 def test_version(cli):
     proc = cli("--version")
     assert proc.returncode == 0
