@@ -119,7 +119,7 @@ BROKEN = {
     ),
     "bad value": (
         'script = "group-spread"\nparams = { data = { from = "first" }, tolerance = 2 }',
-        r"step 'last': The --tolerance parameter of group-spread must be a number in \[0, 0.5\]",
+        r"step 'last': The parameter 'tolerance' of group-spread must be a number in \[0, 0.5\]",
     ),
     "bad reference": (
         'script = "group-spread"\nparams = { data = { from = "frist" } }',

@@ -178,7 +178,7 @@ def test_stdin_mistakes_are_named(run_piped, homes_gpkg, tmp_path, monkeypatch):
     code, _, err = run_piped(
         "group-spread", *homes_gpkg.args, "--output", tmp_path / "t.csv", "--output-format", "csv"
     )
-    assert code == 2 and "--output-format chooses the format of '--output -' only" in err
+    assert code == 2 and "--output-format chooses the format of standard output (--output -) only" in err
     assert not (tmp_path / "t.csv").exists()
 
     class Terminal(_Stdin):

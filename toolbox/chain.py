@@ -28,6 +28,7 @@ file's folder; values given with ``--set STEP.PARAM=VALUE`` from the current fol
 from __future__ import annotations
 
 import difflib
+import functools
 import json
 import os
 import re
@@ -39,7 +40,7 @@ from pathlib import Path
 from typing import Any
 
 from . import layers
-from .errors import InputError, PairspreadError, ParameterError
+from .errors import InputError, PairspreadError, ParameterError, current_caller, speaking, spell
 from .manifest import DATASET_KINDS, RESULT_KINDS, Param, Script, get_script, scripts, validate
 
 __all__ = ["FORMAT_VERSION", "Chain", "Step", "load_chain", "run_chain", "plan_text", "chain_schema"]
@@ -235,6 +236,21 @@ def _order(steps: dict[str, Step], place: _Place) -> list[Step]:
     return [steps[n] for n in done]
 
 
+def _in_chain_words(function):
+    """Messages about a chain's steps name parameters as its file does (``tolerance = 2``);
+    the chain's own switches (overwrite, quiet) as the chain's caller writes them."""
+
+    @functools.wraps(function)
+    def wrapped(*args, **kwargs):
+        if current_caller() == "chain":
+            return function(*args, **kwargs)
+        with speaking("chain", {"overwrite": spell("overwrite", True), "quiet": spell("quiet", True)}):
+            return function(*args, **kwargs)
+
+    return wrapped
+
+
+@_in_chain_words
 def load_chain(
     path_or_dict,
     *,
@@ -440,6 +456,7 @@ def plan_text(chain: Chain) -> str:
     return "\n".join(lines)
 
 
+@_in_chain_words
 def run_chain(
     path_or_dict,
     *,
@@ -509,6 +526,11 @@ def run_chain(
 
 def command(args, *, print_table) -> int:
     """``pairspread chain FILE ...``: check, then run or (``--dry-run``) print the plan."""
+    with speaking("cli"):  # the chain's own switches are options of this command
+        return _command(args, print_table=print_table)
+
+
+def _command(args, *, print_table) -> int:
     if args.dry_run:
         print(plan_text(load_chain(args.file, sets=args.sets, overwrite=args.overwrite)))
         return 0

@@ -20,6 +20,7 @@ from typing import Any
 __all__ = [
     "sentence",
     "spell",
+    "current_caller",
     "param_noun",
     "speaking",
     "PairspreadError",
@@ -78,16 +79,25 @@ class ManifestError(PairspreadError):
 
 
 _UNSET = object()
-#: who is being spoken to: "python" (the default) or "cli", and the positional parameters'
-#: command-line names (a dataset parameter is the DATASET argument, not an option)
+#: who is being spoken to: "python" (the default), "cli" or "chain" (a chain file's keys), and
+#: names with a fixed spelling (the DATASET argument; a chain command's own options)
 _CALLER: contextvars.ContextVar[tuple[str, dict[str, str]]] = contextvars.ContextVar(
     "pairspread_caller", default=("python", {})
 )
+CALLERS = ("python", "cli", "chain")
+
+
+def current_caller() -> str:
+    """The caller messages are rendered for now: "python", "cli" or "chain"."""
+    return _CALLER.get()[0]
 
 
 @contextlib.contextmanager
-def speaking(caller: str, positional: dict[str, str] | None = None) -> Iterator[None]:
-    """Render parameter names for ``caller`` ("cli" or "python") inside the ``with`` block.
+def speaking(caller: str, fixed: dict[str, str] | None = None) -> Iterator[None]:
+    """Render parameter names for ``caller`` inside the ``with`` block.
+
+    ``fixed`` gives names a spelling of their own (on the command line the dataset parameter
+    is the DATASET argument, not an option).
 
     Examples
     --------
@@ -96,10 +106,13 @@ def speaking(caller: str, positional: dict[str, str] | None = None) -> Iterator[
     '--overwrite'
     >>> spell("overwrite", True)
     'overwrite=True'
+    >>> with speaking("chain", {"overwrite": "--overwrite"}):
+    ...     spell("tolerance", 2), param_noun("tolerance"), spell("overwrite", True)
+    ('tolerance = 2', "parameter 'tolerance'", '--overwrite')
     """
-    if caller not in ("cli", "python"):
-        raise ValueError(f"caller must be 'cli' or 'python', not {caller!r}")
-    token = _CALLER.set((caller, dict(positional or {})))
+    if caller not in CALLERS:
+        raise ValueError(f"caller must be one of {', '.join(CALLERS)}, not {caller!r}")
+    token = _CALLER.set((caller, dict(fixed or {})))
     try:
         yield
     finally:
@@ -117,16 +130,18 @@ def spell(name: str, value: Any = _UNSET) -> str:
     ...     spell("to_layer"), spell("distance", "planar"), spell("overwrite", True), spell("data")
     ('--to-layer', '--distance planar', '--overwrite', 'DATASET')
     """
-    caller, positional = _CALLER.get()
+    caller, fixed = _CALLER.get()
+    if name in fixed:
+        return fixed[name]
     if caller == "cli":
-        if name in positional:
-            return positional[name]
         option = "--" + name.replace("_", "-")
         if value is _UNSET or value is True:
             return option
         return f"{option} {value}"
     if value is _UNSET:
         return repr(name)
+    if caller == "chain":  # as written in the chain file (TOML)
+        return f"{name} = {str(value).lower() if isinstance(value, bool) else repr(value)}"
     return f"{name}={value!r}"
 
 
@@ -138,7 +153,9 @@ def param_noun(name: str) -> str:
     >>> param_noun("tolerance")
     "keyword argument 'tolerance'"
     """
-    caller, positional = _CALLER.get()
+    caller, fixed = _CALLER.get()
     if caller == "cli":
-        return f"{'argument' if name in positional else 'option'} {spell(name)}"
+        return f"{'argument' if name in fixed else 'option'} {spell(name)}"
+    if caller == "chain":
+        return f"parameter {spell(name)}"
     return f"keyword argument {spell(name)}"

@@ -6,12 +6,13 @@ is called.
 
 from __future__ import annotations
 
+import contextlib
 import inspect
 import os
 import sys
 from typing import Any
 
-from .errors import ParameterError, speaking, spell
+from .errors import ParameterError, current_caller, speaking, spell
 from .manifest import DATASET_KINDS, Script, get_script, validate
 
 __all__ = ["run", "run_script"]
@@ -82,8 +83,13 @@ def run_script(
     message raised below names parameters as the caller writes them: options for the command
     line (``cli``), keyword arguments for Python (see :func:`toolbox.errors.spell`).
     """
-    positional = {p.name: "DATASET" for p in script.params if p.kind == "dataset"}
-    with speaking("cli" if cli else "python", positional):
+    if cli:
+        words = speaking("cli", {p.name: "DATASET" for p in script.params if p.kind == "dataset"})
+    elif current_caller() == "chain":  # a chain's step: the chain file's words are kept
+        words = contextlib.nullcontext()
+    else:
+        words = speaking("python")
+    with words:
         return _run_script(script, values, cli=cli, made_in=made_in)
 
 

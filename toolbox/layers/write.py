@@ -241,7 +241,7 @@ def check_output(
         return
     if stdout_as is not None:
         raise ParameterError(
-            f"{spell('output_format')} chooses the format of {spell('output', '-')} only; the suffix "
+            f"{spell('output_format')} chooses the format of standard output ({spell('output', '-')}) only; the suffix "
             f"of {path!r} chooses its format. Leave out {spell('output_format')} or write to '-'."
         )
     target = Path(path)
