@@ -14,31 +14,9 @@ from typing import Any
 
 from .errors import ParameterError, current_caller, speaking, spell
 from .manifest import DATASET_KINDS, Script, get_script, validate
+from .progress import ProgressLine
 
 __all__ = ["run", "run_script"]
-
-
-class _ProgressBar:
-    """A tqdm bar on stderr, shown only on a terminal and never with ``quiet``."""
-
-    def __init__(self, label: str, quiet: bool):
-        self.bar = None
-        self.enabled = not quiet and sys.stderr.isatty()
-        self.label = label
-
-    def __call__(self, done: int, total: int) -> None:
-        if not self.enabled or total <= 0:
-            return
-        if self.bar is None:
-            from tqdm import tqdm
-
-            self.bar = tqdm(total=total, desc=self.label, unit="pt", unit_scale=True, leave=False)
-        self.bar.n = done
-        self.bar.refresh()
-
-    def close(self) -> None:
-        if self.bar is not None:
-            self.bar.close()
 
 
 def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
@@ -119,17 +97,24 @@ def _run_script(
     values = _read_piped(script, values)
     function = script.load()
     call = {k: v for k, v in values.items() if k not in runner_params}
-    bar = _ProgressBar(script.name, bool(values.get("quiet", True)))
+    # phases on stderr when it is a terminal: reading until the kernels first report, then
+    # computing, then writing (see toolbox/progress.py)
+    line = ProgressLine(script.name, not values.get("quiet", True) and sys.stderr.isatty())
     if "progress" in inspect.signature(function).parameters:
-        call["progress"] = bar
+        call["progress"] = line
     try:
+        line.phase("reading")
         with thread_limit(values.get("threads")):
             result = function(**call)
+        written = None
+        if output is not None:
+            if output == "-":  # the table goes to the terminal too: clear the line first
+                line.close()
+            else:
+                line.phase("writing")
+            written = layers.write_output(result, output, **where)
     finally:
-        bar.close()
-    written = None
-    if output is not None:
-        written = layers.write_output(result, output, **where)
+        line.close()
     return result, written
 
 

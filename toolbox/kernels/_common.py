@@ -416,6 +416,8 @@ class Ticker:
 
     def __init__(self, progress: Progress | None, total: int):
         self.progress, self.total, self.done = progress, int(total), 0
+        if progress is not None:  # the work starts now (a long first group reports late)
+            progress(0, self.total)
 
     def __call__(self, units) -> None:
         self.done += int(units)
