@@ -286,7 +286,8 @@ def test_nan_or_infinite_coordinates(tmp_path, fails, script):
     path = write(frame.set_geometry(shapely.points(xy), crs=CRS), tmp_path / "broken.gpkg")
     args = [script, path, *(["--group-by", "district"] if script == "cross-spread" else [])]
     fails(
-        *args, *output_args(script, tmp_path), match=[r"3 feature\(s\)", "NaN or infinite", "rows 3, 8, 11"]
+        # the GeoPackage's FIDs (from 1), which a user looks features up by; not 0-based rows
+        *args, *output_args(script, tmp_path), match=[r"3 feature\(s\)", "NaN or infinite", "FIDs 4, 9, 12"]
     )
 
 
@@ -310,7 +311,11 @@ def test_bad_weights_in_a_file(tmp_path, fails, script, value, what):
     ]
     line = fails(*args, *output_args(script, tmp_path), match=["'residents'", what])
     if not isinstance(value, str):
-        assert "rows 2, 9" in line
+        assert "FIDs 3, 10" in line  # the GeoPackage's FIDs, from 1
+    # with a filter the FIDs are still the layer's own
+    line = fails(*args, "--where", "fid > 5", *output_args(script, tmp_path), match=["'residents'", what])
+    if not isinstance(value, str):
+        assert "FID 10" in line and "FIDs" not in line
 
 
 @pytest.mark.parametrize("script", ["group_spread", "cross_spread"])
@@ -319,7 +324,8 @@ def test_nan_weight_in_memory(script):
     frame = homes(20)
     frame["residents"] = frame["residents"].astype(float)
     frame.loc[6, "residents"] = np.nan
-    with pytest.raises(toolbox.InputError, match=r"null or NaN weight in 'residents' \(rows 6\)"):
+    frame.index = frame.index + 100  # a GeoDataFrame's features are named by its index labels
+    with pytest.raises(toolbox.InputError, match=r"null or NaN weight in 'residents' \(index 106\)"):
         getattr(toolbox, script)(frame, weight="residents", group_by="district")
 
 

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError, spell
+from .tables import feature_ids
 
 __all__ = ["Grouping", "group_features", "feature_weights", "planar_units", "group_namer"]
 
@@ -79,10 +80,9 @@ def feature_weights(attributes: pd.DataFrame, field: str | None, label: str) -> 
     for what, bad in problems.items():
         if bad.any():
             rows = np.flatnonzero(bad)
-            shown = ", ".join(str(int(r)) for r in rows[:5])
             raise InputError(
-                f"{rows.size} feature(s) of {label} have a {what} weight in {field!r} (rows "
-                f"{shown}{', ...' if rows.size > 5 else ''}); weights must be finite and "
+                f"{rows.size} feature(s) of {label} have a {what} weight in {field!r} "
+                f"({feature_ids(attributes, rows)}); weights must be finite and "
                 f"non-negative: fix them or filter them out with {spell('where')}."
             )
     return values

@@ -40,6 +40,7 @@ __all__ = [
     "wide_matrix",
     "for_display",
     "csv_text",
+    "feature_ids",
 ]
 
 #: how a null group value is written where text is needed (a label part, a column name, print)
@@ -206,3 +207,30 @@ def csv_text(frame: pd.DataFrame) -> str:
     out.to_csv(buffer, index=False, lineterminator="\n", quoting=csv.QUOTE_MINIMAL)
     # the marker is a whole field wherever an empty text was (no value contains it)
     return buffer.getvalue().replace(marker, '""')
+
+
+def feature_ids(attributes: pd.DataFrame, positions: Sequence[int], limit: int = 5) -> str:
+    """How a user finds the features at ``positions`` of a layer read for a script.
+
+    The reader leaves ``attributes.attrs["ids"] = (kind, values)``: the layer's FIDs for a
+    file OGR reads (a GeoPackage numbers them from 1), or the index labels of a GeoDataFrame.
+    Without them (GeoParquet, standard input, fiona) the rows are counted from 1 and said so.
+
+    Examples
+    --------
+    >>> table = pd.DataFrame({"w": [1.0, -1.0, 2.0, -3.0]})
+    >>> feature_ids(table, [1, 3])
+    'rows 2, 4 (1-based)'
+    >>> table.attrs["ids"] = ("FID", np.array([10, 11, 12, 13]))
+    >>> feature_ids(table, [1]), feature_ids(table, [1, 3])
+    ('FID 11', 'FIDs 11, 13')
+    """
+    positions = np.asarray(positions, dtype=np.int64)
+    kind, ids = attributes.attrs.get("ids", (None, None))
+    if ids is None or len(ids) != len(attributes):
+        shown, word, words, suffix = positions + 1, "row", "rows", " (1-based)"
+    else:
+        shown, suffix = np.asarray(ids)[positions], ""
+        word, words = (kind, kind + "s") if kind == "FID" else (kind, kind)
+    text = ", ".join(str(v) for v in shown[:limit]) + (", ..." if len(shown) > limit else "")
+    return f"{word if len(shown) == 1 else words} {text}{suffix}"

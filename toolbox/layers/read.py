@@ -6,6 +6,7 @@ import difflib
 import os
 import sys
 import warnings
+import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -17,6 +18,7 @@ import pyogrio
 import shapely
 
 from ..errors import GeometryError, InputError, ParameterError, param_noun, spell
+from ..tables import feature_ids
 
 if TYPE_CHECKING:
     import geopandas
@@ -24,6 +26,21 @@ if TYPE_CHECKING:
 __all__ = ["ENGINES", "PointLayer", "read_points", "read_layer", "points_of"]
 
 ENGINES = ("pyogrio", "fiona")
+#: names OGR gives the FID column when it is read as one (a field of such a name would clash)
+_FID_NAMES = {"fid", "__ogr_fid", "ogc_fid"}
+#: FIDs of the frames read_layer returns, for messages: kept beside the frame, not in it, so
+#: that nothing of them is written with a copy of the layer
+_FIDS: dict[int, tuple[weakref.ref, np.ndarray]] = {}
+
+
+def _keep_fids(frame, fids) -> None:
+    _FIDS[id(frame)] = (weakref.ref(frame), fids)
+    weakref.finalize(frame, _FIDS.pop, id(frame), None)
+
+
+def _fids_of(frame):
+    ref, fids = _FIDS.get(id(frame), (None, None))
+    return fids if ref is not None and ref() is frame else None
 
 _POINT_TYPES = {0: "Point", 4: "MultiPoint"}
 _TYPE_NAMES = {
@@ -160,14 +177,20 @@ def read_points(
         return points_of(frame, fields, label)
     path, name, label, available = _open(data, layer, engine, where)
     _check_fields(fields, available, label)
+    # the FIDs name features in messages; not when a field would share the FID column's name
+    fids = not {f.lower() for f in available} & _FID_NAMES
     try:
         # a filter may name fields that are not read; some drivers then drop every row
-        meta, table = pyogrio.read_arrow(path, layer=name, columns=None if where else fields, where=where)
+        meta, table = pyogrio.read_arrow(
+            path, layer=name, columns=None if where else fields, where=where, return_fids=fids
+        )
     except Exception as exc:
         raise _reading_failed(exc, label, where, engine) from exc
     geom_name = meta["geometry_name"] or "wkb_geometry"
     _warn_if_nothing_matched(table.num_rows, where, label)
     attributes = table.select(fields).to_pandas()
+    if fids and meta.get("fid_column") in table.column_names:
+        attributes.attrs["ids"] = ("FID", table.column(meta["fid_column"]).to_numpy())
     return _points_from_wkb(attributes, table.column(geom_name), meta["crs"], label)
 
 
@@ -202,7 +225,11 @@ def read_layer(
         if engine == "pyogrio":
             # a filter may name fields that are not read; some drivers then drop every row
             subset = None if where else columns
-            frame = pyogrio.read_dataframe(path, layer=name, where=where, columns=subset, use_arrow=True)
+            frame = pyogrio.read_dataframe(
+                path, layer=name, where=where, columns=subset, use_arrow=True, fid_as_index=True
+            )
+            fids = frame.index.to_numpy()
+            frame = frame.reset_index(drop=True)
         else:  # some fiona drivers cannot skip fields: read them all, keep the named ones after
             import geopandas
 
@@ -212,6 +239,8 @@ def read_layer(
     _warn_if_nothing_matched(len(frame), where, label)
     if columns is not None:
         frame = frame[[*columns, frame.geometry.name]]
+    if engine == "pyogrio":
+        _keep_fids(frame, fids)
     return frame, label
 
 
@@ -236,6 +265,9 @@ def points_of(frame: geopandas.GeoDataFrame, fields: Sequence[str], label: str) 
     """The points of a GeoDataFrame and its named attribute fields."""
     _check_fields(fields, [c for c in frame.columns if c != frame.geometry.name], label)
     attributes = pd.DataFrame(frame[list(fields)]).reset_index(drop=True)
+    # features are named by the layer's FIDs, or by a GeoDataFrame's own index labels
+    fids = _fids_of(frame)
+    attributes.attrs["ids"] = ("index", frame.index.to_numpy()) if fids is None else ("FID", fids)
     return _points_from_geometry(
         attributes, np.asarray(frame.geometry.values, dtype=object), frame.crs, label
     )
@@ -315,10 +347,9 @@ def _finish(attributes, x, y, feature, crs, label) -> PointLayer:
     bad = ~(np.isfinite(x) & np.isfinite(y))
     if bad.any():
         rows = np.unique(feature[bad])
-        shown = ", ".join(str(int(r)) for r in rows[:5])
         raise GeometryError(
-            f"{rows.size} feature(s) of {label} have NaN or infinite coordinates (rows {shown}"
-            f"{', ...' if rows.size > 5 else ''}); repair or drop them first."
+            f"{rows.size} feature(s) of {label} have NaN or infinite coordinates "
+            f"({feature_ids(attributes, rows)}); repair or drop them first."
         )
     if crs is not None and not hasattr(crs, "to_wkt"):
         import pyproj
