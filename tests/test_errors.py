@@ -15,6 +15,7 @@ import io
 import os
 import re
 import shutil
+import signal
 from pathlib import Path
 
 import geopandas as gpd
@@ -564,6 +565,23 @@ def test_messages_on_the_command_line_read_as_sentences(capfd, homes_gpkg):
     assert main(["group-spread", *homes_gpkg.args, "--group-by", "zone", "--where", "pop < 0"]) == 0
     err = capfd.readouterr().err
     assert "pairspread: warning: No feature of layer 'homes'" in err, err
+
+
+def test_interrupt_just_after_the_rename_says_the_output_was_written(homes_gpkg, tmp_path, monkeypatch, capfd):
+    # a Ctrl-C that lands after the output is in place must not claim that nothing was written
+    from toolbox.layers import write as write_module
+
+    real = write_module._move_into_place
+
+    def then_interrupted(*args, **kwargs):
+        real(*args, **kwargs)
+        os.kill(os.getpid(), signal.SIGINT)  # Ctrl-C right after the rename
+
+    monkeypatch.setattr(write_module, "_move_into_place", then_interrupted)
+    target = tmp_path / "out.csv"
+    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
+    assert capfd.readouterr().err == f"pairspread: interrupted after writing {target}.\n"
+    assert target.is_file()
 
 
 def test_api_docstring_states_python_types():

@@ -166,10 +166,17 @@ def _run(argv: list[str]) -> int:
     return 0
 
 
+def _committed() -> list[str]:
+    """Outputs written so far (without loading the writer just to ask)."""
+    writer = sys.modules.get("toolbox.layers.write")
+    return list(writer.COMMITTED) if writer is not None else []
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the console script and of ``python -m toolbox``."""
     argv = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in argv
+    before = len(_committed())
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
@@ -180,7 +187,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             print(f"pairspread: error: {sentence(str(exc))}", file=sys.stderr)
             return exc.exit_code
         except KeyboardInterrupt:
-            print("pairspread: interrupted; no output was written.", file=sys.stderr)
+            done = _committed()[before:]
+            if done:  # the interrupt came after an output was renamed into place
+                print(f"pairspread: interrupted after writing {', '.join(done)}.", file=sys.stderr)
+            else:
+                print("pairspread: interrupted; no output was written.", file=sys.stderr)
             return 130
         except BrokenPipeError:
             return 141

@@ -8,7 +8,9 @@ import errno
 import os
 import re
 import shutil
+import signal
 import tempfile
+import threading
 import time
 import warnings
 from collections.abc import Iterator, Sequence
@@ -36,6 +38,9 @@ TABLE_FORMATS = {".gpkg": "gpkg", ".csv": "csv", ".parquet": "parquet"}
 LAYER_FORMATS = {".gpkg": "gpkg", ".shp": "shp", ".geojson": "geojson", ".parquet": "parquet"}
 _SHAPEFILE_PARTS = (".shp", ".shx", ".dbf", ".prj", ".cpg")
 
+#: outputs this process has put in place, oldest first: an interrupt that arrives after the
+#: rename must not be reported as "no output was written"
+COMMITTED: list[str] = []
 #: how long a writer waits for another pairspread run writing into the same file
 LOCK_WAIT_SECONDS = 600.0
 #: how often a GeoPackage changed by another program while we wrote is copied again
@@ -98,6 +103,28 @@ def writer_lock(target: Path, *, wait: float | None = None) -> Iterator[None]:
         with contextlib.suppress(OSError):
             os.unlink(path)  # still holding the lock, so nobody is between open and lock on it
         os.close(fd)
+
+
+@contextlib.contextmanager
+def _interrupts_deferred() -> Iterator[None]:
+    """Take a Ctrl-C that arrives inside the block when the block is done, not in between.
+
+    Only the main thread may change the handler, and only Python's own handler is replaced.
+    """
+    if (
+        threading.current_thread() is not threading.main_thread()
+        or signal.getsignal(signal.SIGINT) is not signal.default_int_handler
+    ):
+        yield
+        return
+    pending = []
+    previous = signal.signal(signal.SIGINT, lambda signum, frame: pending.append(signum))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    if pending:
+        raise KeyboardInterrupt
 
 
 def _signature(path: Path) -> tuple | None:
@@ -438,7 +465,9 @@ def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: s
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
         if kind == "gpkg" and _signature(target) != before:
             return False  # another program wrote into it meanwhile: our copy lacks its change
-        _move_into_place(produced, target.parent, scratch)
+        with _interrupts_deferred():  # renamed and recorded together, or neither
+            _move_into_place(produced, target.parent, scratch)
+            COMMITTED.append(str(path))
     except BaseException as exc:
         if isinstance(exc, (OutputError, KeyboardInterrupt, SystemExit)):
             raise
