@@ -31,7 +31,7 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
     parts = [(first, weight, None)]
     if to is not None:
         second = layers.read_points(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], engine=engine)
-        names = (first.label, second.label) if first.label != second.label else ("INPUT", "--to layer")
+        names = (first.label, second.label) if first.label != second.label else ("DATASET", "--to layer")
         parts = [(first, weight, names[0]), (second, to_weight, names[1])]
     xs, ys, features, attrs, w = [], [], [], [], []
     for points, field, name in parts:
