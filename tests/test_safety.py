@@ -1264,3 +1264,37 @@ def test_where_filters_as_asked(tmp_path, capfd, small_inputs):
     assert table["n_points"].tolist() == [
         int(((homes["district"] == "Ferry") & (homes["residents"] >= 4)).sum())
     ]
+
+
+def _mapped(pid: int, needle: str) -> bool:
+    try:
+        return needle in Path(f"/proc/{pid}/maps").read_text()
+    except OSError:
+        return False
+
+
+@pytest.mark.skipif(not Path("/proc/self/maps").is_file(), reason="needs /proc to follow the start-up")
+@pytest.mark.parametrize("library", ["numpy", "pandas", "pyogrio"])
+def test_ctrl_c_while_starting_up(tmp_path, small_inputs, library):
+    # A Ctrl-C in the first half second, while the libraries load, printed a KeyboardInterrupt
+    # traceback and ended the process by SIGINT. The moment is found from the process's own
+    # state (the library's compiled module is mapped, so its import is under way), not from a
+    # delay, so a busy machine cannot move it.
+    data, layer = small_inputs["gpkg"]
+    console = str(Path(sys.executable).with_name("pairspread"))
+    proc = subprocess.Popen(
+        [console, "group-spread", str(data), "--layer", layer, "--output", str(tmp_path / "out.csv")],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env_for_subprocess(),
+    )
+    needle = f"site-packages/{library}"
+    while proc.poll() is None and not _mapped(proc.pid, needle):
+        time.sleep(0.0002)
+    proc.send_signal(signal.SIGINT)
+    stdout, stderr = proc.communicate(timeout=120)
+    assert proc.returncode == 130, stderr
+    assert "Traceback" not in stderr
+    assert one_error_line(stderr) == "pairspread: interrupted; no output was written.", stderr
+    assert stdout == "" and not (tmp_path / "out.csv").exists()
