@@ -275,6 +275,8 @@ FORK_SERVER = textwrap.dedent(
             done, st = os.waitpid(pid, os.WNOHANG)
             if done:
                 status = st
+                if seen is not None and gone is None:  # it ended before a poll saw the scratch go
+                    gone = time.perf_counter()
                 break
             now = time.perf_counter()
             if seen is None and scratch(job["folder"], job["prefix"]):

@@ -26,6 +26,7 @@ from __future__ import annotations
 import csv
 import io
 import warnings
+import weakref
 from collections.abc import Iterable, Sequence
 from typing import Any
 
@@ -41,6 +42,8 @@ __all__ = [
     "for_display",
     "csv_text",
     "feature_ids",
+    "feature_names",
+    "name_features",
 ]
 
 #: how a null group value is written where text is needed (a label part, a column name, print)
@@ -209,24 +212,42 @@ def csv_text(frame: pd.DataFrame) -> str:
     return buffer.getvalue().replace(marker, '""')
 
 
+#: how the rows of a frame read for a script are known to the user, kept beside the frame (not
+#: in ``attrs``: pandas compares attrs when concatenating and writes them into Parquet files)
+_NAMES: dict[int, tuple[weakref.ref, tuple[str, np.ndarray]]] = {}
+
+
+def name_features(frame: pd.DataFrame, kind: str, ids: np.ndarray) -> None:
+    """Remember that the rows of ``frame`` are the features ``ids`` ("FID" or "index" labels)."""
+    key = id(frame)
+    _NAMES[key] = (weakref.ref(frame), (kind, np.asarray(ids)))
+    weakref.finalize(frame, _NAMES.pop, key, None)
+
+
+def feature_names(frame: pd.DataFrame) -> tuple[str, np.ndarray] | None:
+    """What :func:`name_features` remembered for ``frame``, or None."""
+    ref, names = _NAMES.get(id(frame), (None, None))
+    return names if ref is not None and ref() is frame else None
+
+
 def feature_ids(attributes: pd.DataFrame, positions: Sequence[int], limit: int = 5) -> str:
     """How a user finds the features at ``positions`` of a layer read for a script.
 
-    The reader leaves ``attributes.attrs["ids"] = (kind, values)``: the layer's FIDs for a
-    file OGR reads (a GeoPackage numbers them from 1), or the index labels of a GeoDataFrame.
-    Without them (GeoParquet, standard input, fiona) the rows are counted from 1 and said so.
+    The reader names the rows (:func:`name_features`): the layer's FIDs for a file OGR reads
+    (a GeoPackage numbers them from 1), or the index labels of a GeoDataFrame. Without names
+    (GeoParquet, standard input, fiona) the rows are counted from 1 and the message says so.
 
     Examples
     --------
     >>> table = pd.DataFrame({"w": [1.0, -1.0, 2.0, -3.0]})
     >>> feature_ids(table, [1, 3])
     'rows 2, 4 (1-based)'
-    >>> table.attrs["ids"] = ("FID", np.array([10, 11, 12, 13]))
+    >>> name_features(table, "FID", np.array([10, 11, 12, 13]))
     >>> feature_ids(table, [1]), feature_ids(table, [1, 3])
     ('FID 11', 'FIDs 11, 13')
     """
     positions = np.asarray(positions, dtype=np.int64)
-    kind, ids = attributes.attrs.get("ids", (None, None))
+    kind, ids = feature_names(attributes) or (None, None)
     if ids is None or len(ids) != len(attributes):
         shown, word, words, suffix = positions + 1, "row", "rows", " (1-based)"
     else:

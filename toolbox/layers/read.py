@@ -6,7 +6,6 @@ import difflib
 import os
 import sys
 import warnings
-import weakref
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,7 +17,7 @@ import pyogrio
 import shapely
 
 from ..errors import GeometryError, InputError, ParameterError, param_noun, spell
-from ..tables import feature_ids
+from ..tables import feature_ids, feature_names, name_features
 
 if TYPE_CHECKING:
     import geopandas
@@ -28,19 +27,6 @@ __all__ = ["ENGINES", "PointLayer", "read_points", "read_layer", "points_of"]
 ENGINES = ("pyogrio", "fiona")
 #: names OGR gives the FID column when it is read as one (a field of such a name would clash)
 _FID_NAMES = {"fid", "__ogr_fid", "ogc_fid"}
-#: FIDs of the frames read_layer returns, for messages: kept beside the frame, not in it, so
-#: that nothing of them is written with a copy of the layer
-_FIDS: dict[int, tuple[weakref.ref, np.ndarray]] = {}
-
-
-def _keep_fids(frame, fids) -> None:
-    _FIDS[id(frame)] = (weakref.ref(frame), fids)
-    weakref.finalize(frame, _FIDS.pop, id(frame), None)
-
-
-def _fids_of(frame):
-    ref, fids = _FIDS.get(id(frame), (None, None))
-    return fids if ref is not None and ref() is frame else None
 
 _POINT_TYPES = {0: "Point", 4: "MultiPoint"}
 _TYPE_NAMES = {
@@ -190,7 +176,7 @@ def read_points(
     _warn_if_nothing_matched(table.num_rows, where, label)
     attributes = table.select(fields).to_pandas()
     if fids and meta.get("fid_column") in table.column_names:
-        attributes.attrs["ids"] = ("FID", table.column(meta["fid_column"]).to_numpy())
+        name_features(attributes, "FID", table.column(meta["fid_column"]).to_numpy())
     return _points_from_wkb(attributes, table.column(geom_name), meta["crs"], label)
 
 
@@ -240,7 +226,7 @@ def read_layer(
     if columns is not None:
         frame = frame[[*columns, frame.geometry.name]]
     if engine == "pyogrio":
-        _keep_fids(frame, fids)
+        name_features(frame, "FID", fids)
     return frame, label
 
 
@@ -266,8 +252,7 @@ def points_of(frame: geopandas.GeoDataFrame, fields: Sequence[str], label: str) 
     _check_fields(fields, [c for c in frame.columns if c != frame.geometry.name], label)
     attributes = pd.DataFrame(frame[list(fields)]).reset_index(drop=True)
     # features are named by the layer's FIDs, or by a GeoDataFrame's own index labels
-    fids = _fids_of(frame)
-    attributes.attrs["ids"] = ("index", frame.index.to_numpy()) if fids is None else ("FID", fids)
+    name_features(attributes, *(feature_names(frame) or ("index", frame.index.to_numpy())))
     return _points_from_geometry(
         attributes, np.asarray(frame.geometry.values, dtype=object), frame.crs, label
     )
