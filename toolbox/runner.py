@@ -86,14 +86,17 @@ def run_script(
     target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
     output = values.get(target.name) if target else None
     what = "layer" if target is not None and target.kind == "output-layer" else "table"
+    if values.get("output_on") == "regions" or values.get("group_shape") in ("hull", "centre"):
+        what = "layer"  # the result then carries geometries
     where = dict(
         what=what,
         layer_name=values.get("output_layer") or "",
         overwrite=bool(values.get("overwrite")),
         stdout_as=values.get("output_format"),
     )
+    sidecar = not values.get("no_sidecar")
     if output is not None:
-        layers.check_output(output, inputs=_inputs(values), **where)
+        layers.check_output(output, inputs=_inputs(values), sidecar=sidecar, **where)
     elif values.get("output_format") is not None:
         raise ParameterError("--output-format applies to '--output -' (standard output) only.")
     values = _read_piped(script, values)
@@ -109,7 +112,8 @@ def run_script(
         bar.close()
     written = None
     if output is not None:
-        written = layers.write_output(result, output, **where)
+        record = layers.provenance(script.name, values)
+        written = layers.write_output(result, output, record=record, sidecar=sidecar, **where)
     return result, written
 
 
