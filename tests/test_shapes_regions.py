@@ -290,3 +290,57 @@ def test_no_layer_is_touched_by_provenance(tmp_path):
     assert record["input_crs"].endswith("32705")
     write_output(pd.DataFrame({"a": [1]}), str(path), layer_name="result", record=record)
     assert set(pyogrio.list_layers(path)[:, 0]) == {"regions", "result"}
+
+
+# ---------------------------------------------------------------------------------------------
+# maps: read back the PNG (size, not blank, the colour bar's colours present)
+
+
+def _png(path):
+    import matplotlib.image
+
+    return matplotlib.image.imread(path)
+
+
+def test_area_map_has_colour_bar_and_is_not_blank(tmp_path):
+    from toolbox.maps import _PALETTE, draw_map
+
+    regions = districts()
+    regions["mean_dist"] = [1.0, 2.0, np.nan, 3.0]
+    regions["units"] = "metre"
+    path = draw_map("group-spread", regions, str(tmp_path / "map.png"), subject="district")
+    image = _png(path)
+    assert image.shape[0] > 400 and image.shape[1] > 500
+    rgb = image[..., :3].reshape(-1, 3)
+    assert rgb.std() > 0.05  # not one flat colour
+    # both ends of the palette appear (the colour bar spans them), within PNG rounding
+    for colour in (_PALETTE[0], _PALETTE[-1]):
+        target = np.array([int(colour[i : i + 2], 16) / 255 for i in (1, 3, 5)])
+        assert (np.abs(rgb - target).max(axis=1) < 0.02).any(), colour
+
+
+def test_map_refuses_other_suffixes_and_existing_files(tmp_path):
+    from toolbox.maps import check_map
+
+    with pytest.raises(ParameterError, match=r"\.png"):
+        check_map(str(tmp_path / "map.pdf"))
+    (tmp_path / "map.png").write_bytes(b"mine")
+    with pytest.raises(OutputError, match="--overwrite"):
+        check_map(str(tmp_path / "map.png"))
+
+
+def test_map_without_matplotlib_names_the_install_command(monkeypatch):
+    import builtins
+
+    from toolbox import maps
+
+    real = builtins.__import__
+
+    def refuse(name, *args, **kwargs):
+        if name == "matplotlib" or name.startswith("matplotlib."):
+            raise ImportError("No module named 'matplotlib'")
+        return real(name, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "__import__", refuse)
+    with pytest.raises(ParameterError, match=r"pip install 'pairspread\[maps\]'"):
+        maps.check_map("x.png")

@@ -111,6 +111,8 @@ def _finish_axes(ax) -> None:
     ax.set_aspect("equal")
     ax.set_xticks([])
     ax.set_yticks([])
+    ax.set_xlabel("")
+    ax.set_ylabel("")
     for side in ax.spines.values():
         side.set_color("#bbbbbb")
 
@@ -185,7 +187,7 @@ def _remoteness(plt, frame, units: str):
 
         art = ScalarMappable(norm=Normalize(np.nanmin(index), np.nanmax(index)), cmap=cmap)
     bar = fig.colorbar(art, ax=ax, shrink=0.7)
-    bar.set_label("remoteness: mean distance to the rest of the group ÷ the group's mean pair distance")
+    bar.set_label("remoteness: mean distance to the rest of the group\n÷ the group's mean distance between its members")
     _finish_axes(ax)
     _scale_bar(ax, units, frame.crs)
     ax.set_title(
