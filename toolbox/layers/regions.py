@@ -21,9 +21,9 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError, ParameterError
-from .read import _check_fields, read_layer
+from .read import PointLayer, _check_fields, read_layer
 
-__all__ = ["OUTSIDE", "RegionJoin", "join_regions", "onto_regions"]
+__all__ = ["OUTSIDE", "RegionJoin", "join_regions", "attach_regions", "onto_regions"]
 
 #: what happens to points in no region (``--outside-regions``)
 OUTSIDE = ("group", "drop")
@@ -182,6 +182,33 @@ def join_regions(
         values = pd.array(values.where(row >= 0, None), dtype="Int64") if len(values) else values
         values = pd.Series(values)
     return RegionJoin(region_id, values, keep, frame, region_label, missing)
+
+
+def attach_regions(points: PointLayer, join: RegionJoin) -> tuple[PointLayer, np.ndarray]:
+    """The points as rows of their own, each with its region id in the field ``join.field``.
+
+    Every point becomes one row (a MultiPoint, or the samples of ``--as-points fill``, can lie
+    in several regions); points dropped by ``outside="drop"`` are left out. Returns the new
+    points, whose ``feature`` numbers the kept points, and for each of them the row of the
+    feature it came from.
+    """
+    if join.field in points.attributes.columns:
+        raise InputError(
+            f"{points.label} already has a field {join.field!r}, like the --region-id field of "
+            f"{join.label}; rename one of them so that the groups are not confused."
+        )
+    keep = join.keep
+    source = points.feature[keep]
+    attributes = points.attributes.iloc[source].reset_index(drop=True)
+    attributes[join.field] = join.values[keep].reset_index(drop=True)
+    changes = {"attributes": attributes, "x": points.x[keep], "y": points.y[keep]}
+    changes["feature"] = np.arange(int(keep.sum()), dtype=np.int64)
+    for name in ("share", "shift"):  # the fill model's per-point arrays, when present
+        if hasattr(points, name):
+            changes[name] = getattr(points, name)[keep]
+    from dataclasses import replace
+
+    return replace(points, **changes), source
 
 
 def onto_regions(table: pd.DataFrame, join: RegionJoin, *, key: str | None = None):

@@ -30,9 +30,17 @@ import pandas as pd
 import shapely
 
 from ..errors import GeometryError, ParameterError
-from .read import _TYPE_NAMES, PointLayer, _check_fields, _finish
+from .read import _TYPE_NAMES, PointLayer, _check_fields, _finish, read_layer, read_points
 
-__all__ = ["RULES", "ShapePoints", "as_points", "default_spacing", "pair_allowance"]
+__all__ = [
+    "RULES",
+    "ShapePoints",
+    "read_input",
+    "as_points",
+    "default_spacing",
+    "pair_allowance",
+    "degree_scale",
+]
 
 #: the ways a feature becomes points (``--as-points``)
 RULES = ("centroid", "inside", "fill")
@@ -65,10 +73,45 @@ class ShapePoints(PointLayer):
 
     def describe(self, units: str = "") -> str:
         """One line saying how the features became points, for outputs and provenance."""
+        if self.rule == "points":
+            return "points as stored"
         if self.rule != "fill":
             return f"{self.rule} (one point per feature)"
         unit = f" {units}" if units and units != "unknown" else ""
         return f"fill (grid spacing {self.spacing:.6g}{unit}, {self.x.size} sample points)"
+
+
+def read_input(
+    data,
+    *,
+    layer: str | None = None,
+    fields: Sequence[str] = (),
+    where: str | None = None,
+    engine: str = "pyogrio",
+    as_points: str | None = None,
+    fill_spacing: float | None = None,
+    tolerance: float = 0.01,
+    crs=None,
+) -> ShapePoints:
+    """Read a layer as weighted points: its points as they are, or its features by ``as_points``.
+
+    ``crs`` (the run's --crs) reprojects the features before they become points, so that the
+    fill grid and its allowances are in the CRS the distances are measured in.
+
+    Without ``as_points`` the layer must hold points (the reader's message names --as-points
+    otherwise); every point then has share 1 and shift 0. With it, polygons and lines become
+    points by :func:`as_points`. ``fill_spacing`` without ``as_points="fill"`` is refused.
+    """
+    if fill_spacing is not None and as_points != "fill":
+        raise ParameterError("--fill-spacing applies to --as-points fill only; add --as-points fill or drop it.")
+    if as_points is None:
+        base = read_points(data, layer=layer, fields=fields, where=where, engine=engine)
+        ones, zeros = np.ones(base.x.size), np.zeros(base.x.size)
+        return ShapePoints(**base.__dict__, share=ones, shift=zeros, rule="points", spacing=None)
+    frame, label = read_layer(data, layer=layer, where=where, engine=engine, columns=list(dict.fromkeys(fields)))
+    if crs is not None and frame.crs is not None:
+        frame = frame.to_crs(crs)
+    return as_points(frame, list(dict.fromkeys(fields)), label, rule=as_points, spacing=fill_spacing, tolerance=tolerance)
 
 
 def _type_ids(geometry: np.ndarray, label: str) -> np.ndarray:
@@ -310,7 +353,7 @@ def _fill_one(geom, spacing, origin, total):
     return x[keep], y[keep], amount[keep] / total, shift[keep]
 
 
-def pair_allowance(x, y, w, shift, codes, n_groups) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def pair_allowance(x, y, w, shift, codes, n_groups, *, scale: float = 1.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-pair allowances of the fill model, per group: ``(lower, upper, mean_shift)``.
 
     The guaranteed interval of a group's own pairs widens from ``[lo, hi]`` to
@@ -325,6 +368,9 @@ def pair_allowance(x, y, w, shift, codes, n_groups) -> tuple[np.ndarray, np.ndar
     discrete sum, which is divided by the discrete pair weight P = (W² − Σw²)/2 rather than W²/2;
     that can lower the mean by at most ``diam · Σw²/W²`` (``lower``), ``diam`` being the diagonal
     of the group's bounding box. A group of one sample point, whose sum has no pairs, gets NaN.
+
+    ``scale`` turns the coordinates' unit into the distances' unit when they differ: for
+    longitude and latitude (degrees) and geodesic metres, :func:`degree_scale`.
 
     Examples
     --------
@@ -341,10 +387,26 @@ def pair_allowance(x, y, w, shift, codes, n_groups) -> tuple[np.ndarray, np.ndar
     np.maximum.at(hi_x, codes, x)
     np.maximum.at(hi_y, codes, y)
     with np.errstate(invalid="ignore", divide="ignore"):
-        diam = np.hypot(hi_x - lo_x, hi_y - lo_y)
+        diam = scale * np.hypot(hi_x - lo_x, hi_y - lo_y)
         weight = np.bincount(codes, w, n_groups)
         squares = np.bincount(codes, w * w, n_groups)
-        mean_shift = np.where(weight > 0, np.bincount(codes, w * shift, n_groups) / weight, 0.0)
+        mean_shift = scale * np.where(weight > 0, np.bincount(codes, w * shift, n_groups) / weight, 0.0)
         lower = np.where(squares > 0, diam * squares / weight**2, 0.0)
     single = np.bincount(codes, minlength=n_groups) < 2
     return np.where(single, np.nan, lower), np.where(single, np.nan, 2 * mean_shift), mean_shift
+
+
+def degree_scale(a: float, f: float) -> float:
+    """Metres per unit of straight-line length in (longitude, latitude) degrees, at most.
+
+    On the ellipsoid ds² = M² dφ² + (N cos φ)² dλ², and both M and N cos φ are at most the polar
+    radius of curvature a/√(1 − e²); so a path of Euclidean length L in degrees is at most
+    ``L · π/180 · a/√(1 − e²)`` metres long, and the geodesic between its ends no longer.
+
+    Examples
+    --------
+    >>> round(degree_scale(6378137.0, 1 / 298.257223563))
+    111694
+    """
+    e2 = f * (2 - f)
+    return math.pi / 180 * a / math.sqrt(1 - e2)
