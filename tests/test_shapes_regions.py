@@ -344,3 +344,10 @@ def test_map_without_matplotlib_names_the_install_command(monkeypatch):
     monkeypatch.setattr(builtins, "__import__", refuse)
     with pytest.raises(ParameterError, match=r"pip install 'pairspread\[maps\]'"):
         maps.check_map("x.png")
+
+
+def test_provenance_of_layers_in_memory():
+    frame = gpd.GeoDataFrame({"a": [1]}, geometry=[shapely.Point(0, 0)], crs="EPSG:32705")
+    record = provenance("cross-spread", {"data": frame, "to": frame, "group_by": [], "wide": False})
+    assert record["input"] == "a GeoDataFrame of 1 features" and record["input_crs"].endswith("32705")
+    assert record["parameters"] == {"to": "a GeoDataFrame of 1 features"}

@@ -227,6 +227,11 @@ def _plain(value):
     return str(value)
 
 
+def _unset(value) -> bool:
+    """A parameter left at nothing (not worth recording); layers in memory are never that."""
+    return value is None or value is False or (isinstance(value, (list, tuple)) and not value)
+
+
 def _crs_text(data, layer) -> str | None:
     try:
         if _is_frame(data):
@@ -277,7 +282,7 @@ def provenance(script: str, values: dict) -> dict:
         "input_crs": _crs_text(data, values.get("layer")),
         "tolerance": values.get("tolerance"),
         "weight": values.get("weight"),
-        "parameters": {k: _plain(v) for k, v in values.items() if k not in skip and v not in (None, [], False)},
+        "parameters": {k: _plain(v) for k, v in values.items() if k not in skip and not _unset(v)},
     }
 
 
