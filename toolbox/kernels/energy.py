@@ -378,6 +378,8 @@ def energy_test(
     permutations: int = 999,
     seed=None,
     orders=None,
+    scale_bounds: tuple[float, float] = (1.0, 1.0),
+    pair_slack: float = 0.0,
     progress: Callable[[int, int], None] | None = None,
 ) -> EnergyTest:
     """Energy distance (two samples) or DISCO (k samples) with a permutation p-value.
@@ -408,6 +410,11 @@ def energy_test(
         Explicit relabellings instead of random ones: each row a permutation ``π`` of the units,
         read as a reordered distance matrix is: unit ``π[i]`` takes the label of unit ``i``
         (lets a test replay another program's permutations).
+    scale_bounds : (float, float)
+        ``(k_min, k_max)`` with every pair's planar distance within ``[k_min, k_max]`` times the
+        distance to report (the distortion of a local map projection); folded into the interval.
+    pair_slack : float
+        Absolute error of every planar pair distance (the rounding of projected coordinates).
     progress : callable, optional
         Called as ``progress(done, total)`` in relabellings.
 
@@ -476,11 +483,13 @@ def energy_test(
             progress(start + size, permutations)
     return _summarise(
         f_total, f_obs[0], counts, weight_sum, w, point_labels, xc, yc, exact, m, k,
-        p_value=(extreme + 1) / (permutations + 1), permutations=permutations,
+        scale_bounds, pair_slack, p_value=(extreme + 1) / (permutations + 1), permutations=permutations,
     )  # fmt: skip
 
 
-def _summarise(f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, exact, m, k, **test):
+def _summarise(
+    f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, exact, m, k, scale_bounds, pair_slack, **test
+):
     """Estimates and guaranteed intervals of the observed statistics from the summed sums."""
     n = xc.size
     N = float(w.sum())
@@ -504,14 +513,25 @@ def _summarise(f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, e
         _interval(plus, slack_plus, m, exact),
         _interval(minus, slack_minus, m, exact),
     )
+    norm = (N * N - float((weight_sum**2).sum())) / (4 * N)  # Σ_{a<b} W_a W_b / (2N)
+    pair_weight = (weight_sum**2 - np.bincount(point_labels, w * w, minlength=k)) / 2
+    scale = 1.0 if exact else projection_factors(m)[2]
+    k_min, k_max = scale_bounds
+    if (k_min, k_max) != (1.0, 1.0) or pair_slack:
+        # planar lengths within pair_slack of [k_min, k_max] times the reported ones (section 6
+        # of docs/method.md): fold both into each part; the estimate takes the middle factor
+        plus_pairs, minus_pairs = 2 * norm, float((pair_weight * coeff).sum())
+        lo_p = max(lo_p - pair_slack * plus_pairs, 0.0) / k_max * (1 - 2 * UNIT_ROUNDOFF)
+        hi_p = (hi_p + pair_slack * plus_pairs) / k_min * (1 + 2 * UNIT_ROUNDOFF)
+        lo_m = max(lo_m - pair_slack * minus_pairs, 0.0) / k_max * (1 - 2 * UNIT_ROUNDOFF)
+        hi_m = (hi_m + pair_slack * minus_pairs) / k_min * (1 + 2 * UNIT_ROUNDOFF)
+        shrink = 2 / (k_min + k_max)
+        est_p, est_m, scale = est_p * shrink, est_m * shrink, scale * shrink
     between = est_p - est_m
     lo, hi = lo_p - hi_m, hi_p - lo_m
     lo, hi = lo - 4 * UNIT_ROUNDOFF * (hi_p + hi_m), hi + 4 * UNIT_ROUNDOFF * (hi_p + hi_m)
-    scale = 1.0 if exact else projection_factors(m)[2]
     disco_within = scale * float((f_within / weight_sum).sum())
-    norm = (N * N - float((weight_sum**2).sum())) / (4 * N)  # Σ_{a<b} W_a W_b / (2N)
     energy, lo, hi = between / norm, max(lo / norm, 0.0), hi / norm
-    pair_weight = (weight_sum**2 - np.bincount(point_labels, w * w, minlength=k)) / 2
     f_ratio = (between / (k - 1)) / (disco_within / (N - k)) if N > k and disco_within > 0 else math.nan
     return EnergyTest(
         n_points=counts,
