@@ -47,7 +47,9 @@ EXACT_MAX_POINTS = 5000
 #: beyond a million relabellings the p-value's resolution (1e-6) says nothing more
 MAX_PERMUTATIONS = 1_000_000
 #: relabellings per call of the scan kernel (progress and memory step)
-_BATCH = 64
+_BATCH = 128
+#: relabellings drawn by one thread: 64 one-byte labels fill one cache line of a row
+_RELABEL_BLOCK = 64
 
 
 @dataclass(frozen=True)
@@ -118,26 +120,30 @@ def _relabel_python(counts, seeds, out):  # pragma: no cover - compiled by numba
     """
     n_units, n_perm = out.shape
     k = counts.size
-    state = seeds.astype(np.uint64)
-    left = np.empty((n_perm, k), dtype=np.int64)
-    for b in range(n_perm):
-        left[b, :] = counts
-    for u in range(n_units):
-        bound = np.uint64(n_units - u)
-        threshold = (np.uint64(1 << 32) - bound) % bound  # 2^32 mod bound: rejection keeps it exact
-        for b in range(n_perm):
-            while True:
-                state[b], z = _splitmix(state[b])
-                product = (z >> np.uint64(32)) * bound
-                if (product & np.uint64(0xFFFFFFFF)) >= threshold:
-                    break
-            r = np.int64(product >> np.uint64(32))
-            a = 0
-            while r >= left[b, a]:
-                r -= left[b, a]
-                a += 1
-            left[b, a] -= 1
-            out[u, b] = a
+    blocks = (n_perm + _RELABEL_BLOCK - 1) // _RELABEL_BLOCK
+    for block in prange(blocks):  # noqa: F821 - numba's prange; a block is one cache line of a row
+        first = block * _RELABEL_BLOCK
+        last = min(first + _RELABEL_BLOCK, n_perm)
+        state = seeds[first:last].astype(np.uint64)
+        left = np.empty((last - first, k), dtype=np.int64)
+        for b in range(last - first):
+            left[b, :] = counts
+        for u in range(n_units):
+            bound = np.uint64(n_units - u)
+            threshold = (np.uint64(1 << 32) - bound) % bound  # 2^32 mod bound: rejection keeps it exact
+            for b in range(last - first):
+                while True:
+                    state[b], z = _splitmix(state[b])
+                    product = (z >> np.uint64(32)) * bound
+                    if (product & np.uint64(0xFFFFFFFF)) >= threshold:
+                        break
+                r = np.int64(product >> np.uint64(32))
+                a = 0
+                while r >= left[b, a]:
+                    r -= left[b, a]
+                    a += 1
+                left[b, a] -= 1
+                out[u, first + b] = a
 
 
 def _scan_python(labels, unit_sorted, p_sorted, w_sorted, weighted, out_f, out_w):  # pragma: no cover
@@ -221,12 +227,11 @@ def _compiled():
     except ImportError:  # pragma: no cover - numba is a dependency; the numpy path is the fallback
         return None
     globals()["prange"] = numba.prange
-    serial = numba.njit(cache=True, nogil=True)
-    globals()["_splitmix"] = serial(_splitmix)
+    globals()["_splitmix"] = numba.njit(cache=True, nogil=True)(_splitmix)
     jit = numba.njit(parallel=True, cache=True, nogil=True)
     # contracting a·b + c into one rounding (FMA) only makes the sums more accurate
     vector = numba.njit(parallel=True, cache=True, nogil=True, fastmath={"contract"})
-    return serial(_relabel_python), jit(_scan_python), vector(_scan2_python)
+    return jit(_relabel_python), jit(_scan_python), vector(_scan2_python)
 
 
 def _relabel(counts, seeds, n_units, dtype):
