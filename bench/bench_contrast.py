@@ -72,11 +72,14 @@ def main() -> int:
         lambda: energy_test(x, y, labels, tolerance=0.01, permutations=args.permutations, seed=1)
     )
     verdict = "met" if wall <= 10 else "**not met**"
+    cpu_verdict = "met" if cpu / (os.cpu_count() or 1) <= 10 else "not met"
     say(
         f"- energy_test, n = {args.points:,}, two samples, {args.permutations} relabellings, tolerance 0.01 "
         f"({result.directions} directions): **{wall:.1f} s** wall ({cpu:.1f} s CPU over all threads); "
         f"target ≤ 10 s: {verdict} (ratio to target {wall / 10:.2f}×). energy {result.energy:.3g} m in "
-        f"[{result.energy_lo:.3g}, {result.energy_hi:.3g}], p = {result.p_value:.4f}."
+        f"[{result.energy_lo:.3g}, {result.energy_hi:.3g}], p = {result.p_value:.4f}. From CPU time shared "
+        f"over the {os.cpu_count()} cores (what an idle machine would take, if the threads split the work "
+        f"evenly): {cpu / (os.cpu_count() or 1):.1f} s, {cpu_verdict}."
     )
 
     import dcor
@@ -90,9 +93,11 @@ def main() -> int:
         if took > args.dcor_limit:
             break
         best = (n, took, dx, dy, dl)
-        if took * 4 > args.dcor_limit * 1.5:  # the next doubling would take about 4× as long
+        # next n: double, or as far as an n² extrapolation stays within 95 % of the limit
+        step = min(2.0, 0.95 * (args.dcor_limit / max(took, 1e-3)) ** 0.5)
+        if step < 1.05:
             break
-        n *= 2
+        n = int(round(n * step, -1))
     if best is not None:
         n, took, dx, dy, dl = best
         ours, ours_wall, _ = timed(lambda: energy_test(dx, dy, dl, permutations=args.permutations, seed=1))

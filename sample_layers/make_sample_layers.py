@@ -25,6 +25,12 @@ Outputs (written beside this script, replacing earlier outputs):
       only show where each district lies. They may overlap and are
       not a partition of the island.
     * ``island`` (Polygon): the coastline. Field: ``name`` (text).
+    * ``wards`` (Polygon): 14 wards that partition the island (every
+      point of the island lies in exactly one ward, up to shared
+      edges): the Voronoi cells of invented ward seats, clipped to the
+      coast. Fields: ``ward`` (text), ``ward_no`` (int), ``area_km2``
+      (real), ``population`` (int, the residents of the households
+      inside the ward).
 
 ``households_east.shp`` (with ``.shx``, ``.dbf``, ``.prj``, ``.cpg``)
     The households of the three easternmost districts, with the same
@@ -102,6 +108,27 @@ DISTRICTS = [
     ("Wyndercombe", -12.0,  7.0,  4.0,  0.55,  110, 1600, 0.25),  # west valleys
     ("Gorsebeck",    0.5,  -4.0,  8.0,  0.85,   45, 2900, 0.22),  # upland farms
     ("Ambrevale",   11.5,   0.5,  3.5,  0.45,   80, 1500, 0.30),  # east vale
+]
+# fmt: on
+
+# Ward seats in km from the island centre. The wards are the Voronoi
+# cells of these seats clipped to the coast, so they partition the island.
+# fmt: off
+WARD_SEATS = [
+    ("Lintmere Central",   -3.0,   2.0),
+    ("Lintmere North",     -3.5,   5.5),
+    ("Pennacove",           9.0,  -6.5),
+    ("Ostravel",          -10.0,  -5.0),
+    ("Ostravel South",     -7.5, -11.0),
+    ("Saltrigg",           15.5,   4.0),
+    ("Fellmarrow West",    -1.5,  11.0),
+    ("Fellmarrow East",     6.0,   9.5),
+    ("Wyndercombe",       -13.5,   7.5),
+    ("Wyndercombe Coast", -19.0,   0.5),
+    ("Gorsebeck",           1.0,  -3.0),
+    ("Gorsebeck South",     2.5, -11.5),
+    ("Ambrevale",          11.0,  -0.5),
+    ("Ambrevale North",    10.5,   5.5),
 ]
 # fmt: on
 
@@ -348,6 +375,45 @@ def build_districts(households: gpd.GeoDataFrame, land: Polygon) -> gpd.GeoDataF
     )
 
 
+def build_wards(households: gpd.GeoDataFrame, land: Polygon) -> gpd.GeoDataFrame:
+    """Build the ward layer: Voronoi cells of the ward seats, clipped to the coast.
+
+    The cells cover the island without gaps or overlaps, so every
+    household lies in one ward (or on a shared edge). ``population``
+    adds up the residents of the households inside each ward.
+    """
+    seats = shapely.points(
+        [CENTRE_E + dx * 1000.0 for _, dx, _ in WARD_SEATS],
+        [CENTRE_N + dy * 1000.0 for _, _, dy in WARD_SEATS],
+    )
+    cells = shapely.get_parts(shapely.voronoi_polygons(shapely.multipoints(seats), extend_to=land))
+    outlines = []
+    for seat in seats:
+        cell = next(c for c in cells if c.contains(seat))
+        outline = shapely.set_precision(cell.intersection(land), 0.1)
+        if outline.geom_type != "Polygon":
+            outline = max(outline.geoms, key=lambda g: g.area)
+        outlines.append(outline)
+    outlines = np.array(outlines, dtype=object)
+    xy = shapely.get_coordinates(households.geometry.values)
+    population = []
+    for outline in outlines:
+        inside = shapely.intersects_xy(outline, xy[:, 0], xy[:, 1])
+        population.append(int(households["residents"].to_numpy()[inside].sum()))
+    return gpd.GeoDataFrame(
+        pd.DataFrame(
+            {
+                "ward": [name for name, _, _ in WARD_SEATS],
+                "ward_no": np.arange(1, len(WARD_SEATS) + 1, dtype=np.int32),
+                "area_km2": np.round(shapely.area(outlines) / 1e6, 3),
+                "population": np.array(population, dtype=np.int32),
+            }
+        ),
+        geometry=outlines,
+        crs=CRS,
+    )
+
+
 def eastern_district_names(n: int) -> list[str]:
     """Return the ``n`` districts whose centres lie furthest east."""
     by_east = sorted(DISTRICTS, key=lambda d: d[1], reverse=True)
@@ -421,6 +487,7 @@ def main() -> None:
     households = build_households(household_rng, island)
     sites = build_service_sites(site_rng, island)
     districts = build_districts(households, island)
+    wards = build_wards(households, island)
     island_gdf = gpd.GeoDataFrame(
         {"name": ["Isle of Quenwick"]}, geometry=[island], crs=CRS
     )
@@ -434,6 +501,7 @@ def main() -> None:
             "service_sites": sites,
             "districts": districts,
             "island": island_gdf,
+            "wards": wards,
         },
         east,
     )

@@ -17,13 +17,14 @@ import dcor
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import pyproj
 import pytest
 import shapely
 from scipy import stats
 from scipy.spatial.distance import cdist
 
 import toolbox
-from toolbox.errors import InputError, ParameterError
+from toolbox.errors import ParameterError
 from toolbox.kernels.energy import energy_test, holm_adjust
 
 
@@ -258,9 +259,22 @@ def test_script_bad_parameters(params, error, match):
         toolbox.spread_contrast(_households(), **params)
 
 
-def test_script_refuses_geographic_layers_naming_crs():
-    layer = _households().to_crs("EPSG:4326")
-    with pytest.raises(InputError, match="--crs"):
-        toolbox.spread_contrast(layer, compare="tenure", permutations=19)
-    table = toolbox.spread_contrast(layer, compare="tenure", crs="EPSG:32705", permutations=19, seed=1)
-    assert table["units"].iloc[0] == "metre"
+def test_script_geodesic_interval_holds_against_pyproj():
+    # reference: ellipsoidal distances over all pairs from pyproj.Geod(ellps="WGS84").inv
+    # (Karney 2013), combined into the energy distance by its definition (V-statistic means)
+    layer = _households().iloc[:40].to_crs("EPSG:4326")
+    table = toolbox.spread_contrast(layer, compare="tenure", tolerance=0.001, permutations=19, seed=1)
+    lon, lat = layer.geometry.x.to_numpy(), layer.geometry.y.to_numpy()
+    i, j = np.triu_indices(lon.size, 1)
+    d = np.zeros((lon.size, lon.size))
+    d[i, j] = d[j, i] = pyproj.Geod(ellps="WGS84").inv(lon[i], lat[i], lon[j], lat[j])[2]
+    rented = (layer["tenure"] == "rented").to_numpy()
+    expected = 2 * d[~rented][:, rented].mean() - d[~rented][:, ~rented].mean() - d[rented][:, rented].mean()
+    row = table.iloc[0]
+    assert row["units"] == "metre" and row["method"] == "projection"
+    assert row["energy_lo"] <= expected <= row["energy_hi"]
+    assert abs(row["energy"] - expected) <= 0.01 * row["between_mean"]
+    with pytest.raises(ParameterError, match="--crs"):
+        toolbox.spread_contrast(layer, compare="tenure", tolerance=0, permutations=19)
+    planar = toolbox.spread_contrast(layer, compare="tenure", crs="EPSG:32705", permutations=19, seed=1)
+    assert planar["units"].iloc[0] == "metre"

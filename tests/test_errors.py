@@ -514,7 +514,8 @@ def test_successful_runs_leave_inputs_unchanged(capfd, homes_file, tmp_path):
         assert code == 0, capfd.readouterr().err
     after = snapshot(tmp_path)
     assert {k: v for k, v in after.items() if not k.startswith("out")} == inputs
-    assert sorted(p.name for p in out.iterdir()) == ["a.csv", "b.gpkg", "c.parquet"]  # no leftovers
+    # no leftovers; the CSV's provenance record is its sidecar (issue 9)
+    assert sorted(p.name for p in out.iterdir()) == ["a.csv", "a.csv.json", "b.gpkg", "c.parquet"]
 
 
 def test_api_errors_are_exceptions_of_one_root(homes, tmp_path):

@@ -1064,9 +1064,10 @@ def test_output_into_the_input_geopackage_keeps_its_layers(tmp_path, capfd, smal
 
 
 def _output_files(path: Path) -> set[str]:
+    # CSV and Shapefile outputs get their provenance record as a sidecar (issue 9)
     if path.suffix == ".shp":  # a Shapefile is several files
-        return {path.with_suffix(s).name for s in (".shp", ".shx", ".dbf", ".prj", ".cpg")}
-    return {path.name}
+        return {path.with_suffix(s).name for s in (".shp", ".shx", ".dbf", ".prj", ".cpg", ".shp.json")}
+    return {path.name, path.name + ".json"} if path.suffix == ".csv" else {path.name}
 
 
 def test_no_file_is_written_beside_the_output(tmp_path, capfd, monkeypatch, small_inputs):

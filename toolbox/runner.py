@@ -82,14 +82,17 @@ def _run_script(
     target = next((p for p in script.params if p.kind in ("result-table-file", "result-layer-file")), None)
     output = values.get(target.name) if target else None
     what = "layer" if target is not None and target.kind == "result-layer-file" else "table"
+    if values.get("output_on") == "regions" or values.get("group_shape") in ("hull", "centre"):
+        what = "layer"  # the result then carries geometries
     where = dict(
         what=what,
         layer_name=values.get("output_layer") or "",
         overwrite=bool(values.get("overwrite")),
         stdout_as=values.get("output_format"),
     )
+    sidecar = not values.get("no_sidecar")
     if output is not None:
-        layers.check_output(output, inputs=_inputs(values), **where)
+        layers.check_output(output, inputs=_inputs(values), sidecar=sidecar, **where)
     elif values.get("output_format") is not None:
         raise ParameterError(
             f"{spell('output_format')} applies to {spell('output', '-')} (standard output) only."
@@ -112,7 +115,8 @@ def _run_script(
                 line.close()
             else:
                 line.phase("writing")
-            written = layers.write_output(result, output, **where)
+            record = layers.provenance(script.name, values)
+            written = layers.write_output(result, output, record=record, sidecar=sidecar, **where)
     finally:
         line.close()
     return result, written

@@ -47,7 +47,9 @@ EXACT_MAX_POINTS = 5000
 #: beyond a million relabellings the p-value's resolution (1e-6) says nothing more
 MAX_PERMUTATIONS = 1_000_000
 #: relabellings per call of the scan kernel (progress and memory step)
-_BATCH = 64
+_BATCH = 128
+#: relabellings drawn by one thread: 64 one-byte labels fill one cache line of a row
+_RELABEL_BLOCK = 64
 
 
 @dataclass(frozen=True)
@@ -118,26 +120,30 @@ def _relabel_python(counts, seeds, out):  # pragma: no cover - compiled by numba
     """
     n_units, n_perm = out.shape
     k = counts.size
-    state = seeds.astype(np.uint64)
-    left = np.empty((n_perm, k), dtype=np.int64)
-    for b in range(n_perm):
-        left[b, :] = counts
-    for u in range(n_units):
-        bound = np.uint64(n_units - u)
-        threshold = (np.uint64(1 << 32) - bound) % bound  # 2^32 mod bound: rejection keeps it exact
-        for b in range(n_perm):
-            while True:
-                state[b], z = _splitmix(state[b])
-                product = (z >> np.uint64(32)) * bound
-                if (product & np.uint64(0xFFFFFFFF)) >= threshold:
-                    break
-            r = np.int64(product >> np.uint64(32))
-            a = 0
-            while r >= left[b, a]:
-                r -= left[b, a]
-                a += 1
-            left[b, a] -= 1
-            out[u, b] = a
+    blocks = (n_perm + _RELABEL_BLOCK - 1) // _RELABEL_BLOCK
+    for block in prange(blocks):  # noqa: F821 - numba's prange; a block is one cache line of a row
+        first = block * _RELABEL_BLOCK
+        last = min(first + _RELABEL_BLOCK, n_perm)
+        state = seeds[first:last].astype(np.uint64)
+        left = np.empty((last - first, k), dtype=np.int64)
+        for b in range(last - first):
+            left[b, :] = counts
+        for u in range(n_units):
+            bound = np.uint64(n_units - u)
+            threshold = (np.uint64(1 << 32) - bound) % bound  # 2^32 mod bound: rejection keeps it exact
+            for b in range(last - first):
+                while True:
+                    state[b], z = _splitmix(state[b])
+                    product = (z >> np.uint64(32)) * bound
+                    if (product & np.uint64(0xFFFFFFFF)) >= threshold:
+                        break
+                r = np.int64(product >> np.uint64(32))
+                a = 0
+                while r >= left[b, a]:
+                    r -= left[b, a]
+                    a += 1
+                left[b, a] -= 1
+                out[u, first + b] = a
 
 
 def _scan_python(labels, unit_sorted, p_sorted, w_sorted, weighted, out_f, out_w):  # pragma: no cover
@@ -221,12 +227,11 @@ def _compiled():
     except ImportError:  # pragma: no cover - numba is a dependency; the numpy path is the fallback
         return None
     globals()["prange"] = numba.prange
-    serial = numba.njit(cache=True, nogil=True)
-    globals()["_splitmix"] = serial(_splitmix)
+    globals()["_splitmix"] = numba.njit(cache=True, nogil=True)(_splitmix)
     jit = numba.njit(parallel=True, cache=True, nogil=True)
     # contracting a·b + c into one rounding (FMA) only makes the sums more accurate
     vector = numba.njit(parallel=True, cache=True, nogil=True, fastmath={"contract"})
-    return serial(_relabel_python), jit(_scan_python), vector(_scan2_python)
+    return jit(_relabel_python), jit(_scan_python), vector(_scan2_python)
 
 
 def _relabel(counts, seeds, n_units, dtype):
@@ -378,6 +383,8 @@ def energy_test(
     permutations: int = 999,
     seed=None,
     orders=None,
+    scale_bounds: tuple[float, float] = (1.0, 1.0),
+    pair_slack: float = 0.0,
     progress: Callable[[int, int], None] | None = None,
 ) -> EnergyTest:
     """Energy distance (two samples) or DISCO (k samples) with a permutation p-value.
@@ -408,6 +415,11 @@ def energy_test(
         Explicit relabellings instead of random ones: each row a permutation ``π`` of the units,
         read as a reordered distance matrix is: unit ``π[i]`` takes the label of unit ``i``
         (lets a test replay another program's permutations).
+    scale_bounds : (float, float)
+        ``(k_min, k_max)`` with every pair's planar distance within ``[k_min, k_max]`` times the
+        distance to report (the distortion of a local map projection); folded into the interval.
+    pair_slack : float
+        Absolute error of every planar pair distance (the rounding of projected coordinates).
     progress : callable, optional
         Called as ``progress(done, total)`` in relabellings.
 
@@ -476,11 +488,13 @@ def energy_test(
             progress(start + size, permutations)
     return _summarise(
         f_total, f_obs[0], counts, weight_sum, w, point_labels, xc, yc, exact, m, k,
-        p_value=(extreme + 1) / (permutations + 1), permutations=permutations,
+        scale_bounds, pair_slack, p_value=(extreme + 1) / (permutations + 1), permutations=permutations,
     )  # fmt: skip
 
 
-def _summarise(f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, exact, m, k, **test):
+def _summarise(
+    f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, exact, m, k, scale_bounds, pair_slack, **test
+):
     """Estimates and guaranteed intervals of the observed statistics from the summed sums."""
     n = xc.size
     N = float(w.sum())
@@ -504,14 +518,25 @@ def _summarise(f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, e
         _interval(plus, slack_plus, m, exact),
         _interval(minus, slack_minus, m, exact),
     )
+    norm = (N * N - float((weight_sum**2).sum())) / (4 * N)  # Σ_{a<b} W_a W_b / (2N)
+    pair_weight = (weight_sum**2 - np.bincount(point_labels, w * w, minlength=k)) / 2
+    scale = 1.0 if exact else projection_factors(m)[2]
+    k_min, k_max = scale_bounds
+    if (k_min, k_max) != (1.0, 1.0) or pair_slack:
+        # planar lengths within pair_slack of [k_min, k_max] times the reported ones (section 6
+        # of docs/method.md): fold both into each part; the estimate takes the middle factor
+        plus_pairs, minus_pairs = 2 * norm, float((pair_weight * coeff).sum())
+        lo_p = max(lo_p - pair_slack * plus_pairs, 0.0) / k_max * (1 - 2 * UNIT_ROUNDOFF)
+        hi_p = (hi_p + pair_slack * plus_pairs) / k_min * (1 + 2 * UNIT_ROUNDOFF)
+        lo_m = max(lo_m - pair_slack * minus_pairs, 0.0) / k_max * (1 - 2 * UNIT_ROUNDOFF)
+        hi_m = (hi_m + pair_slack * minus_pairs) / k_min * (1 + 2 * UNIT_ROUNDOFF)
+        shrink = 2 / (k_min + k_max)
+        est_p, est_m, scale = est_p * shrink, est_m * shrink, scale * shrink
     between = est_p - est_m
     lo, hi = lo_p - hi_m, hi_p - lo_m
     lo, hi = lo - 4 * UNIT_ROUNDOFF * (hi_p + hi_m), hi + 4 * UNIT_ROUNDOFF * (hi_p + hi_m)
-    scale = 1.0 if exact else projection_factors(m)[2]
     disco_within = scale * float((f_within / weight_sum).sum())
-    norm = (N * N - float((weight_sum**2).sum())) / (4 * N)  # Σ_{a<b} W_a W_b / (2N)
     energy, lo, hi = between / norm, max(lo / norm, 0.0), hi / norm
-    pair_weight = (weight_sum**2 - np.bincount(point_labels, w * w, minlength=k)) / 2
     f_ratio = (between / (k - 1)) / (disco_within / (N - k)) if N > k and disco_within > 0 else math.nan
     return EnergyTest(
         n_points=counts,

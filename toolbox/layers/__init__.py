@@ -10,7 +10,15 @@ touching layers that were already there.
 """
 
 from .read import ENGINES, PointLayer, points_of, read_layer, read_points
-from .write import LAYER_FORMATS, TABLE_FORMATS, check_output, output_format, shapefile_names, write_output
+from .write import (
+    LAYER_FORMATS,
+    TABLE_FORMATS,
+    check_output,
+    output_format,
+    provenance,
+    shapefile_names,
+    write_output,
+)
 
 __all__ = [
     "ENGINES",
@@ -33,6 +41,7 @@ __all__ = [
     "filter_frame",
     "read_stdin",
     "layer_from_bytes",
+    "provenance",
 ]
 
 # pyarrow.dataset takes a while to import: load the Arrow readers on first use only

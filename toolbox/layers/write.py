@@ -4,7 +4,9 @@ touching layers that were already there."""
 from __future__ import annotations
 
 import contextlib
+import datetime
 import errno
+import json
 import os
 import re
 import shutil
@@ -31,7 +33,14 @@ __all__ = [
     "shapefile_names",
     "check_output",
     "write_output",
+    "provenance",
+    "SIDECAR_SUFFIX",
 ]
+
+#: suffix added to a CSV or Shapefile output's name for its provenance record
+SIDECAR_SUFFIX = ".json"
+#: key of the provenance record in Parquet metadata and GeoPackage metadata
+PROVENANCE_KEY = "pairspread"
 
 #: output formats by suffix, for attribute tables and for layers (geometry kept)
 TABLE_FORMATS = {".gpkg": "gpkg", ".csv": "csv", ".parquet": "parquet"}
@@ -241,6 +250,7 @@ def check_output(
     inputs=(),
     fields: Sequence[str] = (),
     stdout_as: str | None = None,
+    sidecar: bool = False,
 ) -> None:
     """Refuse, before any work is done, an output that cannot or must not be written.
 
@@ -261,6 +271,9 @@ def check_output(
     stdout_as : {"csv", "geojson", "geoparquet"}, optional
         Format written when ``path`` is ``-`` (``--output-format``); a file's suffix decides
         its own format, so naming one for a file is refused.
+    sidecar : bool
+        Whether a provenance sidecar (output name + ``.json``) will be written beside a CSV or
+        Shapefile output; an existing one is replaced only with ``overwrite``.
     """
     kind = output_format(path, what)
     if kind == "stdout":
@@ -273,6 +286,12 @@ def check_output(
         )
     target = Path(path)
     _check_folder(target)
+    note = Path(path + SIDECAR_SUFFIX)
+    if sidecar and kind in ("csv", "shp") and note.exists() and not overwrite:
+        raise OutputError(
+            f"{str(note)!r} (where the provenance record of {path!r} goes) already exists; pass "
+            "--overwrite to replace it, or --no-sidecar to write none."
+        )
     if target.is_dir():
         raise OutputError(f"The output {path!r} is a folder; name a file.")
     for in_path, in_layer in inputs:
@@ -336,6 +355,96 @@ def _disk_cause(folder: Path | None, exc: BaseException | None = None) -> str:
     return ""
 
 
+def _plain(value):
+    """A parameter value as JSON can hold it (paths as text, a GeoDataFrame by description)."""
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    if isinstance(value, os.PathLike):
+        return os.fspath(value)
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if _is_frame(value):
+        return f"a GeoDataFrame of {len(value)} features"
+    return str(value)
+
+
+def _unset(value) -> bool:
+    """A parameter left at nothing (not worth recording); layers in memory are never that."""
+    return value is None or value is False or (isinstance(value, (list, tuple)) and not value)
+
+
+def _crs_text(data, layer) -> str | None:
+    try:
+        if _is_frame(data):
+            crs = data.crs
+            return None if crs is None else crs.to_string()
+        if isinstance(data, (str, os.PathLike)):
+            return pyogrio.read_info(os.fspath(data), layer=layer).get("crs")
+    except Exception:  # the record names what it can; reading errors were reported already
+        return None
+    return None
+
+
+def provenance(script: str, values: dict) -> dict:
+    """How an output was made: script, parameters, input and its CRS, version and date.
+
+    Parameters
+    ----------
+    script : str
+        Script name, e.g. ``"group-spread"``.
+    values : dict
+        The script's validated parameter values.
+
+    Returns
+    -------
+    dict
+        A JSON-ready record, written into every output (see :func:`write_output`).
+
+    Examples
+    --------
+    >>> record = provenance("group-spread", {"data": "homes.gpkg", "tolerance": 0.01})
+    >>> record["script"], record["parameters"]["tolerance"], record["input"]
+    ('group-spread', 0.01, 'homes.gpkg')
+    """
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        made_by = f"pairspread {version('pairspread')}"
+    except PackageNotFoundError:  # running from a source tree that is not installed
+        made_by = "pairspread (version unknown)"
+    skip = {"output", "overwrite", "quiet", "no_sidecar", "data"}
+    data = values.get("data")
+    return {
+        "made_by": made_by,
+        "script": script,
+        "created": datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds"),
+        "input": _plain(data),
+        "layer": values.get("layer"),
+        "input_crs": _crs_text(data, values.get("layer")),
+        "tolerance": values.get("tolerance"),
+        "weight": values.get("weight"),
+        "parameters": {k: _plain(v) for k, v in values.items() if k not in skip and not _unset(v)},
+    }
+
+
+def _one_line(record: dict) -> str:
+    """The provenance record as the one line a GeoPackage table description holds."""
+    layer = f", layer {record['layer']}" if record.get("layer") else ""
+    return (
+        f"{record['script']} by {record['made_by']} on {record['created']} from "
+        f"{record['input']}{layer} (tolerance {record.get('tolerance')}); details in gpkg_metadata"
+    )
+
+
+def _add_parquet_metadata(path: Path, record: dict) -> None:
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(path)
+    metadata = dict(table.schema.metadata or {})
+    metadata[PROVENANCE_KEY.encode()] = json.dumps(record).encode()
+    pq.write_table(table.replace_schema_metadata(metadata), path)
+
+
 def _check_written(tmp: Path, kind: str, rows: int, fields: Sequence[str], layer_name: str, path: str) -> None:
     """Read back what was written: some writers ignore a failed write (a full disk) on close."""
     if kind in ("csv", "parquet"):
@@ -397,8 +506,15 @@ def write_output(
     layer_name: str = "",
     overwrite: bool = False,
     stdout_as: str | None = None,
+    record: dict | None = None,
+    sidecar: bool = True,
 ) -> str:
     """Write a table or layer atomically; returns a description of where it went.
+
+    ``record`` (see :func:`provenance`) goes into the output: a GeoPackage table's description
+    and a ``gpkg_metadata`` row, Parquet key-value metadata (key ``pairspread``), a GeoJSON
+    ``description``, and for CSV and Shapefile a sidecar file named after the output plus
+    ``.json`` (unless ``sidecar`` is False).
 
     A GeoPackage output gets the table or layer and keeps every other layer it had: it is
     written into a copy beside the file, which then replaces it in one rename. Other formats
@@ -407,7 +523,11 @@ def write_output(
     """
     geometry_name = frame.geometry.name if _is_frame(frame) else None
     fields = [c for c in frame.columns if c != geometry_name]
-    check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields, stdout_as=stdout_as)
+    sidecar = sidecar and record is not None
+    check_output(
+        path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields, stdout_as=stdout_as,
+        sidecar=sidecar,
+    )  # fmt: skip
     kind = output_format(path, what)
     if kind == "stdout":
         from .pipe import write_stdout
@@ -417,9 +537,11 @@ def write_output(
     target = Path(path)
     with writer_lock(target):
         # checked again under the lock: a run that finished meanwhile may have added the table
-        check_output(path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields)
+        check_output(
+            path, what=what, layer_name=layer_name, overwrite=overwrite, fields=fields, sidecar=sidecar
+        )
         for _ in range(_FOREIGN_CHANGE_RETRIES):
-            if _write_once(frame, path, target, kind, fields, layer_name):
+            if _write_once(frame, path, target, kind, fields, layer_name, record, sidecar):
                 break
         else:
             raise OutputError(
@@ -432,24 +554,35 @@ def write_output(
     return str(path)
 
 
-def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: str) -> bool:
+def _write_once(
+    frame, path: str, target: Path, kind: str, fields, layer_name: str, record: dict | None, sidecar: bool
+) -> bool:
     """One copy-write-rename; False (and nothing written) if another program changed the target."""
     scratch = None
     try:
         scratch = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent))
         tmp = scratch / target.name
         before = _signature(target)
+        text = None if record is None else json.dumps(record)
         if kind == "gpkg":
             if before is not None:
                 shutil.copyfile(target, tmp)
                 shutil.copymode(target, tmp)
-            pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG")
+            extra = {}
+            if record is not None:
+                extra = dict(
+                    layer_options={"DESCRIPTION": _one_line(record)}, layer_metadata={PROVENANCE_KEY: text}
+                )
+            pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG", **extra)
         elif kind == "csv":
             tmp.write_text(csv_text(frame), encoding="utf-8")
         elif kind == "parquet":
             frame.to_parquet(tmp, index=False)
+            if record is not None:
+                _add_parquet_metadata(tmp, record)
         elif kind == "geojson":
-            pyogrio.write_dataframe(frame, tmp, driver="GeoJSON")
+            extra = {} if record is None else dict(layer_options={"DESCRIPTION": text})
+            pyogrio.write_dataframe(frame, tmp, driver="GeoJSON", **extra)
         else:  # names are shortened here, at a character boundary, rather than by GDAL
             renamed = {k: v for k, v in shapefile_names(fields).items() if k != v}
             if renamed:
@@ -463,6 +596,10 @@ def _write_once(frame, path: str, target: Path, kind: str, fields, layer_name: s
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
         _check_written(tmp, kind, len(frame), [str(f) for f in fields], layer_name, path)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
+        if record is not None and sidecar and kind in ("csv", "shp"):
+            note = tmp.with_name(tmp.name + SIDECAR_SUFFIX)
+            note.write_text(json.dumps(record, indent=2) + "\n", encoding="utf-8")
+            produced.append(note)
         if kind == "gpkg" and _signature(target) != before:
             return False  # another program wrote into it meanwhile: our copy lacks its change
         with _interrupts_deferred():  # renamed and recorded together, or neither

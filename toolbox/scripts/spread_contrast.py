@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from .. import geodesy, grouping, layers
-from ..errors import InputError, ParameterError
+from ..errors import ParameterError
 from ..kernels.energy import check_permutations, energy_test, holm_adjust
 
 _SAMPLE = "__sample__"
@@ -22,12 +22,6 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
     fields = [*group_by, *([compare] if compare else []), *([weight] if weight else [])]
     first = layers.read_points(data, layer=layer, fields=fields, where=where, engine=engine)
     setup = geodesy.distance_setup(first.crs, first.label, distance=distance, target=crs, script="spread-contrast")
-    if setup.kind == "geodesic":
-        raise InputError(
-            f"{first.label} is in a geographic CRS ({first.crs.name}); spread-contrast computes planar "
-            "distances only: pass --crs with a projected CRS suited to the area (a UTM zone or a "
-            "national grid), e.g. --crs EPSG:32633."
-        )
     parts = [(first, weight, None)]
     if to is not None:
         second = layers.read_points(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], engine=engine)
@@ -44,7 +38,26 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
     groups = grouping.group_features(table, group_by)
     values = table[_SAMPLE if to is not None else compare]
     return (np.concatenate(xs), np.concatenate(ys), np.concatenate(features), np.concatenate(w),
-            values, groups, setup.units)  # fmt: skip
+            values, groups, setup)  # fmt: skip
+
+
+def _frame(setup):
+    """Planar coordinates of one test's points, the energy_test arguments they need, or a note.
+
+    Geodesic layers: an azimuthal equidistant projection centred on the test's points, whose
+    distortion (and coordinate rounding) goes into the interval, as for the other scripts.
+    """
+    if setup.kind == "planar":
+        return lambda x, y: (x, y, {}, None)
+
+    def local(lon, lat):
+        frame = geodesy.local_frame(lon, lat, setup.a, setup.f)
+        if not frame.usable:
+            return lon, lat, {}, f"the group {frame.reason}: too wide for one local projection; pass --crs"
+        slack = 2 * geodesy.FORWARD_ALLOWANCE * setup.a / geodesy.WGS84_A
+        return frame.x, frame.y, {"scale_bounds": (frame.k_min, frame.k_max), "pair_slack": slack}, None
+
+    return local
 
 
 def spread_contrast(
@@ -60,9 +73,15 @@ def spread_contrast(
             "samples) and --to (a second layer: the two layers are the samples)."
         )
     permutations = check_permutations(permutations)
-    x, y, feature, w, values, groups, units = _setup(
+    x, y, feature, w, values, groups, setup = _setup(
         data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine
     )
+    frame = _frame(setup)
+    if setup.kind == "geodesic" and (tolerance == 0 or method == "exact"):
+        raise ParameterError(
+            "Exact sums (--tolerance 0 or --method exact) are planar only; for geodesic distances use a "
+            "tolerance above 0 (the interval then includes the local projection), or pass --crs."
+        )
     if values.isna().any():
         warnings.warn(f"{int(values.isna().sum())} feature(s) without a value in {compare!r} are left out.", UserWarning, stacklevel=2)
     seed = int(np.random.SeedSequence(seed).entropy % 2**63) if seed is None else int(seed)
@@ -79,10 +98,12 @@ def spread_contrast(
         row = {"samples": " | ".join(names), "n_samples": len(names), "n_points": at.size}
         row["sizes"] = " | ".join(str(c) for c in sizes)
         row["note"] = _problem(names, sizes, np.bincount(labels[unit_of[feature[at]]], w[at], len(names)), compare or "the layers")
+        px, py, extra, note = frame(x[at], y[at])
+        row["note"] = row["note"] or note
         if row["note"] is None:
             done = code * permutations
-            r = energy_test(x[at], y[at], labels, w[at] if weight or to_weight else None, units=unit_of[feature[at]],
-                            tolerance=tolerance, method=method, permutations=permutations, seed=streams[code],
+            r = energy_test(px, py, labels, w[at] if weight or to_weight else None, units=unit_of[feature[at]],
+                            tolerance=tolerance, method="projection" if extra else method, permutations=permutations, seed=streams[code], **extra,
                             progress=None if progress is None else lambda i, _, d=done: progress(d + i, groups.count * permutations))  # fmt: skip
             row.update(within_means=" | ".join(f"{v:.6g}" for v in r.within_mean), between_mean=r.between_mean,
                        energy=r.energy, energy_lo=r.energy_lo, energy_hi=r.energy_hi, disco_between=r.disco_between,
@@ -99,7 +120,7 @@ def spread_contrast(
         warnings.warn(f"{len(table) - tested} of {len(table)} test(s) could not be computed; see the note column.", UserWarning, stacklevel=2)
     table["p_adjusted"] = holm_adjust(table["p_value"].to_numpy(dtype=float))
     table["adjustment"] = f"Holm over {tested} tests" if tested > 1 else "none (one test)"
-    table["permutations"], table["seed"], table["units"] = permutations, seed, units
+    table["permutations"], table["seed"], table["units"] = permutations, seed, setup.units
     order = [*groups.keys.columns, "samples", "n_samples", "sizes", "n_points", "within_means", "between_mean",
              "energy", "energy_lo", "energy_hi", "disco_between", "disco_within", "f_ratio", "p_value",
              "p_adjusted", "adjustment", "permutations", "seed", "method", "directions", "units", "note"]  # fmt: skip
