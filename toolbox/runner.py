@@ -40,13 +40,27 @@ class _ProgressBar:
             self.bar.close()
 
 
-def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
-    """The (path, layer) pairs a script reads, which its output must never replace."""
-    found = []
-    for data, layer in (("data", "layer"), ("to", "to_layer")):
-        if isinstance(values.get(data), (str, os.PathLike)):
-            found.append((os.fspath(values[data]), values.get(layer)))
-    return found
+#: parameter kinds the runner acts on: datasets read (each with the layer parameter declared
+#: after it), the result file and the name of the result inside it
+DATASET_KINDS = ("dataset", "other-dataset")
+LAYER_KIND = "layer-name"
+RESULT_KINDS = {"output-table": "table", "output-layer": "layer"}
+RESULT_NAME_KIND = "output-layer-name"
+
+
+def _inputs(script: Script, values: dict[str, Any]) -> list[tuple[str, str | None]]:
+    """The (path, layer) pairs a script reads, which its output must never replace.
+
+    Every dataset parameter is paired with the layer parameter declared after it (and before
+    the next dataset), so a script declares what it reads by the kinds of its parameters.
+    """
+    found: list[list] = []
+    for p in script.params:
+        if p.kind in DATASET_KINDS:
+            found.append([values.get(p.name), None])
+        elif p.kind == LAYER_KIND and found and found[-1][1] is None:
+            found[-1][1] = values.get(p.name)
+    return [(os.fspath(data), layer) for data, layer in found if isinstance(data, (str, os.PathLike))]
 
 
 def _is_dash(value: Any) -> bool:
@@ -83,20 +97,21 @@ def run_script(
 
     values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
-    target = next((p for p in script.params if p.kind in ("output-table", "output-layer")), None)
+    target = next((p for p in script.params if p.kind in RESULT_KINDS), None)
     output = values.get(target.name) if target else None
-    what = "layer" if target is not None and target.kind == "output-layer" else "table"
+    name = next((values.get(p.name) for p in script.params if p.kind == RESULT_NAME_KIND), None)
+    what = RESULT_KINDS[target.kind] if target is not None else "table"
     if values.get("output_on") == "regions" or values.get("group_shape") in ("hull", "centre"):
         what = "layer"  # the result then carries geometries
     where = dict(
         what=what,
-        layer_name=values.get("output_layer") or "",
+        layer_name=name or "",
         overwrite=bool(values.get("overwrite")),
         stdout_as=values.get("output_format"),
     )
     sidecar = not values.get("no_sidecar")
     if output is not None:
-        layers.check_output(output, inputs=_inputs(values), sidecar=sidecar, **where)
+        layers.check_output(output, inputs=_inputs(script, values), sidecar=sidecar, **where)
     elif values.get("output_format") is not None:
         raise ParameterError("--output-format applies to '--output -' (standard output) only.")
     values = _read_piped(script, values)
