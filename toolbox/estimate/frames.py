@@ -10,7 +10,7 @@ The argument is in docs/method.md ("Geographic coordinates").
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import cache
 
 import numpy as np
@@ -18,7 +18,7 @@ import numpy as np
 from ..kernels import WGS84_A, WGS84_F, geod
 from .interval import distortion_error
 
-__all__ = ["MAX_RADIUS_DEG", "LocalFrame", "local_frame"]
+__all__ = ["MAX_RADIUS_DEG", "LocalFrame", "local_frame", "frame_from_centre"]
 
 #: farthest a group may reach from its centre (degrees of arc, measured as a share of the
 #: quarter meridian) and still use a local projection; below the convexity radius of the
@@ -115,6 +115,36 @@ def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
         return _unusable("has points PROJ could not project", lon0=lon0, lat0=lat0)
     r = np.hypot(x, y)
     radius_m = float(r.max()) if r.size else 0.0
+    far = np.argsort(r)[-POINT_SAMPLES:]
+    frame = frame_from_centre(lon0, lat0, radius_m, a, f, lon[far], lat[far], proj=proj)
+    return replace(frame, x=x, y=y) if frame.usable else frame
+
+
+def frame_from_centre(
+    lon0: float,
+    lat0: float,
+    radius_m: float,
+    a: float = WGS84_A,
+    f: float = WGS84_F,
+    lon=(),
+    lat=(),
+    *,
+    proj=None,
+) -> LocalFrame:
+    """The AEQD frame centred on (lon0, lat0) over the geodesic disc of ``radius_m`` metres.
+
+    The Tissot semi-axes are sampled at the centre, on the disc's boundary circle (where, by
+    the argument in docs/method.md, the largest one lies) and at the given points (a check of
+    it), and widened by a small margin. The frame carries no projected points.
+
+    Examples
+    --------
+    >>> frame = frame_from_centre(0.0, 0.0, 55_660.0)  # about 0.5°: c²/6 ≈ 1.3e-5
+    >>> bool(frame.k_min <= 1 < frame.k_max < 1 + 2e-5)
+    True
+    """
+    import pyproj
+
     radius_deg = 90 * radius_m / _quarter_meridian(a, f)
     if radius_deg > MAX_RADIUS_DEG:
         return _unusable(
@@ -124,14 +154,13 @@ def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
             lon0,
             lat0,
         )
-    # Scale factors: at the centre, on the boundary circle (where, by the argument in
-    # docs/method.md, the largest one lies) and at the farthest points, as a check of it.
+    if proj is None:
+        proj = pyproj.Proj(proj="aeqd", lat_0=lat0, lon_0=lon0, a=a, f=f, units="m")
     azimuths = np.arange(BOUNDARY_SAMPLES) * (360.0 / BOUNDARY_SAMPLES)
     ones = np.ones(BOUNDARY_SAMPLES)
     blon, blat, _ = geod(a, f).fwd(lon0 * ones, lat0 * ones, azimuths, radius_m * (1 + 1e-9) * ones)
-    far = np.argsort(r)[-POINT_SAMPLES:]
-    slon = np.concatenate([[lon0], np.asarray(blon), lon[far]])
-    slat = np.concatenate([[lat0], np.asarray(blat), lat[far]])
+    slon = np.concatenate([[lon0], np.asarray(blon), np.asarray(lon, dtype=np.float64)])
+    slat = np.concatenate([[lat0], np.asarray(blat), np.asarray(lat, dtype=np.float64)])
     factors = proj.get_factors(slon, slat)
     big = np.asarray(factors.tissot_semimajor, dtype=np.float64)
     small = np.asarray(factors.tissot_semiminor, dtype=np.float64)
@@ -141,4 +170,4 @@ def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
     k_min = min(float(small.min()), 1.0)
     k_max += SCALE_MARGIN_REL * (k_max - 1) + SCALE_MARGIN_ABS
     k_min -= SCALE_MARGIN_REL * (1 - k_min) + SCALE_MARGIN_ABS
-    return LocalFrame(True, "", lon0, lat0, radius_m, radius_deg, k_min, k_max, x, y)
+    return LocalFrame(True, "", lon0, lat0, radius_m, radius_deg, k_min, k_max, None, None)
