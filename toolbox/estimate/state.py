@@ -232,7 +232,7 @@ class Plan:
         --------
         >>> pts = Points.build([0, 1, 2, 3], [0, 0, 0, 0])
         >>> plan = Survey.of(pts).plan(method="projection")
-        >>> r = plan.accumulate(pts).finish()
+        >>> r = plan.accumulate(pts).finish(plan)
         >>> bool(r.lower[0] <= 10 <= r.upper[0])
         True
         """
@@ -568,7 +568,7 @@ class State:
             self.count + other.count,
         )
 
-    def finish(self, plan: Plan | None = None, refined: RefinementState | None = None) -> GroupPairSums:
+    def finish(self, plan: Plan, refined: RefinementState | None = None) -> GroupPairSums:
         """Every group's pair total with its guaranteed interval (see :func:`finish`)."""
         return finish(self, plan, refined)
 
