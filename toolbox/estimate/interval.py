@@ -31,6 +31,7 @@ __all__ = [
     "bin_budget",
     "check_method",
     "interval",
+    "crofton_interval",
     "distortion_error",
     "planar_tolerance",
     "fold_distortion",
@@ -207,10 +208,24 @@ def interval(raw: Raw):
         lo = np.maximum(value * (1 - raw.relative) - absolute, 0.0)
         hi = value * (1 + raw.relative) + absolute
         return est, lo, hi, _relative_bound(est, lo, hi)
+    uncertain = np.asarray(raw.uncertain, dtype=np.float64)
+    return crofton_interval(value + uncertain / 2, uncertain / 2 + absolute, m)
+
+
+def crofton_interval(summed, slack, m):
+    """Estimate, bounds and relative bound from summed projections ``F ± slack`` on m directions.
+
+    The slack grows by (m + 4)·u·F for adding up the m directions and the final products.
+
+    Examples
+    --------
+    >>> [round(float(v), 6) for v in crofton_interval(1.0, 0.0, 2)]
+    [0.828427, 0.707107, 1.0, 0.171573]
+    """
     lo_f, hi_f, est_f = projection_factors(m)
     # projected sums are sums of non-negative terms: rounding noise below 0 is 0
-    summed = np.maximum(value + np.asarray(raw.uncertain) / 2, 0.0)
-    slack = raw.uncertain / 2 + absolute + (m + 4) * UNIT_ROUNDOFF * summed
+    summed = np.maximum(np.asarray(summed, dtype=np.float64), 0.0)
+    slack = slack + (m + 4) * UNIT_ROUNDOFF * summed
     est = est_f * summed
     lo = lo_f * np.maximum(summed - slack, 0.0)
     hi = hi_f * (summed + slack)
