@@ -178,3 +178,42 @@ def test_a_group_too_wide_for_its_frame_gets_a_note_and_the_others_their_sums(mo
     assert "too many for exact geodesic sums" in r.note[0] and np.isnan(r.total[0])
     truth = exact_totals(lon, lat, groups, None, True)
     assert r.note[1] == "" and r.lower[1] <= truth[1] <= r.upper[1]
+
+
+def exact_rows(x, y, groups, weights, geodesic):
+    """Per point Σ_j w_j d_ij over its group, by brute force (cdist or Geod.inv)."""
+    from scipy.spatial.distance import cdist
+
+    out = np.empty(x.size)
+    w = np.ones(x.size) if weights is None else weights
+    for g in range(2):
+        m = np.flatnonzero(groups == g)
+        if geodesic:
+            i, j = np.meshgrid(m, m, indexing="ij")
+            d = np.asarray(GEOD.inv(x[i.ravel()], y[i.ravel()], x[j.ravel()], y[j.ravel()])[2]).reshape(i.shape)
+        else:
+            d = cdist(np.column_stack([x[m], y[m]]), np.column_stack([x[m], y[m]]))
+        out[m] = d @ w[m]
+    return out
+
+
+@pytest.mark.parametrize("geodesic", [False, True], ids=["planar", "geodesic"])
+@pytest.mark.parametrize("layout", ["clustered", "remote", "duplicates"])
+def test_per_point_sums_from_the_finished_bins(layout, geodesic):
+    # a further pass places every point of every part in the finished bins of its group
+    rng = np.random.default_rng(21)
+    x, y = (geodesic_layout if geodesic else planar_layout)(layout, rng)
+    groups, weights = rng.integers(0, 2, N), rng.gamma(2.0, 1.5, N)
+    truth = exact_rows(x, y, groups, weights, geodesic)
+    for method in ("projection", "auto"):
+        chunks = np.array_split(rng.permutation(N), 7)
+        kind = "geodesic" if geodesic else "planar"
+        parts = [Points.build(x[c], y[c], groups[c], 2, weights[c], distance=kind) for c in chunks]
+        plan = merge_all(Survey.of(p) for p in parts).plan(tolerance=0.01, method=method)
+        state = merge_all(plan.accumulate(p) for p in parts)
+        refinement = state.refinement(plan)
+        refined = None if refinement is None else merge_all(refinement.accumulate(plan, p) for p in parts)
+        for c, p in zip(chunks, parts, strict=True):
+            r = state.point_sums_of(plan, p, refined)
+            t = truth[c]
+            assert np.all(r.lower <= t * (1 + 1e-12)) and np.all(t <= r.upper * (1 + 1e-12)), layout

@@ -59,6 +59,7 @@ __all__ = [
     "RefinementState",
     "merge_all",
     "pair_sums_from",
+    "point_sums_of",
     "MAX_BINS",
     "REFINE_BINS",
 ]
@@ -572,6 +573,10 @@ class State:
         """Every group's pair total with its guaranteed interval (see :func:`finish`)."""
         return finish(self, plan, refined)
 
+    def point_sums_of(self, plan: Plan, points: Points, refined: RefinementState | None = None):
+        """Per-point sums of a part's points against their whole group (see :func:`point_sums_of`)."""
+        return point_sums_of(self, plan, points, refined)
+
     def refinement(self, plan: Plan) -> Refinement | None:
         """The heavy cells to split in a further pass, or None when every group meets its tolerance."""
         return _refinement(self, plan)
@@ -848,3 +853,119 @@ def pair_sums_from(parts, *, tolerance: float = 0.01, method: str = "auto", name
             [RefinementState.empty(refinement), *(refinement.accumulate(plan, p) for p in parts())]
         )
     return state.finish(plan, refined)
+
+
+# --------------------------------------------------------------------------------------------
+# per-point sums: a further pass over the points against the finished bins
+
+
+def _prefix(a):
+    """Exclusive prefix sums along the last axis, as sums of earlier terms."""
+    out = np.zeros_like(a)
+    np.cumsum(a[..., :-1], axis=-1, out=out[..., 1:])
+    return out
+
+
+def _suffix(a):
+    """Exclusive suffix sums along the last axis, as sums of later terms."""
+    return _prefix(a[..., ::-1])[..., ::-1]
+
+
+def _point_parts(W, S, lo, hi, index, p):
+    """Exact part and in-bin interval of Σ_j w_j |p − p_j| for values p in bins ``index``.
+
+    Points in other bins are ordered with respect to p: ``p (W_< − W_>) − (S_< − S_>)``.
+    Points of p's own bin add at least ``|p W_b − S_b|`` (the triangle inequality) and at most
+    ``W_b`` times p's distance to the farther end of the bin's values.
+    """
+    before_w, after_w = _prefix(W)[index], _suffix(W)[index]
+    before_s, after_s = _prefix(S)[index], _suffix(S)[index]
+    exact = p * (before_w - after_w) - (before_s - after_s)
+    wb, sb = W[index], S[index]
+    low = np.abs(p * wb - sb)
+    high = wb * np.maximum(p - lo[index], hi[index] - p)
+    return exact + low, np.maximum(high - low, 0.0)
+
+
+def point_sums_of(state: State, plan: Plan, points: Points, refined: RefinementState | None = None):
+    """Σ_j w_j d_ij from every point of ``points`` to all the points of its group.
+
+    A further pass after :meth:`State.finish`: each point is placed in the finished bins of
+    every direction (and in the sub-bins of a refined cell); points in other bins are summed
+    exactly, those of its own bin bounded. Gathered groups are summed exactly against their
+    gathered points. Returns a :class:`PointSums` for these points, in their order.
+    """
+    from .results import PointSums
+    from .sums import _Table
+
+    _check_points(plan, points)
+    if state.key != plan.key:
+        raise ParameterError("This state was accumulated with another plan.")
+    survey = plan.survey
+    n = points.x.size
+    g = points.groups
+    w = _weights(points)
+    out = _Table(n)
+    out.note[:] = plan.note[g]
+    other = np.maximum(survey.weight_sum[g] - w, 0.0)
+    gathered = np.isin(g, np.flatnonzero(plan.route == ROUTE_GATHER))
+    if gathered.any():
+        _gathered_point_sums(state, plan, points, np.flatnonzero(gathered), out)
+    subcells = refined.refinement if refined is not None else None
+    for group in np.unique(g[np.isin(g, np.flatnonzero(plan.route == ROUTE_BINS))]):
+        mine = np.flatnonzero(g == group)
+        px, py = plan.frame_coordinates(points.x[mine], points.y[mine], g[mine])
+        W, S, Q, C, lo, hi = _group_cells(plan, state, int(group))
+        m, b = W.shape
+        cell, p = _cells(plan, px, py, np.full(mine.size, group), m)
+        local = cell - plan.offset[group] - np.arange(m)[:, None] * b  # bin of each point
+        value, uncertain = np.zeros(mine.size), np.zeros(mine.size)
+        for d in range(m):
+            e, u = _point_parts(W[d], S[d], lo[d], hi[d], local[d], p[d])
+            if subcells is not None:
+                for c in np.flatnonzero((subcells.group == group) & (subcells.direction == d)):
+                    inside = local[d] == subcells.bin[c]
+                    if not inside.any():
+                        continue
+                    sl = slice(subcells.offset[c], subcells.offset[c] + subcells.sub_bins[c])
+                    sw, ss = refined.cells[0, sl], refined.cells[1, sl]
+                    slo, shi = refined.bounds[0, sl], refined.bounds[1, sl]
+                    width = subcells.hi[c] - subcells.lo[c]
+                    scale = subcells.sub_bins[c] / width if width > 0 else 0.0
+                    q = p[d, inside]
+                    sub = np.clip(np.floor((q - subcells.lo[c]) * scale).astype(np.int64), 0, subcells.sub_bins[c] - 1)
+                    # the cell's own points, now by sub-bin, replace its in-bin bound
+                    outside_e = e[inside] - np.abs(q * W[d, subcells.bin[c]] - S[d, subcells.bin[c]])
+                    se, su = _point_parts(sw, ss, slo, shi, sub, q)
+                    e[inside], u[inside] = outside_e + se, su
+            value += e
+            uncertain += u
+        # Rounding, as for the in-memory point kernel: the prefix sums are bounded by W_g·r_i
+        # and A_g = Σ w_j r_j, built from chains of at most 2B + 8 + (points in a bin) additions.
+        chain = 2.0 * b + 8.0 + float(C.max())
+        r = np.hypot(px, py)
+        slack = m * (4 * chain + 6) * UNIT_ROUNDOFF * (survey.weight_sum[group] * r + state.radius_sum[group])
+        est, low, high, bound = interval(Raw(value, m, absolute=slack, uncertain=uncertain))
+        if plan.geodesic:
+            est, low, high, bound = fold_distortion(
+                est, low, high, plan.k_min[group], plan.k_max[group], forward_slack(survey.a, other[mine])
+            )
+        out.put(mine, est, low, high, bound, exact=False, directions=m)
+    out.clear(~(other > 0))
+    return PointSums(other_weight=other, **out.columns())
+
+
+def _gathered_point_sums(state, plan, points, rows, out) -> None:
+    """Exact sums of points of gathered groups against the gathered points of their group."""
+    kept = state.gathered
+    survey = plan.survey
+    for group in np.unique(points.groups[rows]):
+        mine = rows[points.groups[rows] == group]
+        theirs = kept.groups == group
+        bx, by, bw = kept.x[theirs], kept.y[theirs], kept.w[theirs]
+        if plan.geodesic:
+            raw = kernels.exact_geodesic_against_raw(points.x[mine], points.y[mine], bx, by, bw, survey.a, survey.f)
+        else:  # centred on the gathered points (any nearby centre keeps the digits)
+            cx, cy = (float(np.mean(bx)), float(np.mean(by))) if bx.size else (0.0, 0.0)
+            raw = kernels.exact_against_raw(points.x[mine] - cx, points.y[mine] - cy, bx - cx, by - cy, bw)
+        out.put_raw(mine, raw)

@@ -24,13 +24,14 @@ from .geodesic import (
     WGS84_A,
     WGS84_F,
     check_lonlat,
+    exact_geodesic_against_raw,
     exact_geodesic_cross_raw,
     exact_geodesic_pair_raw,
     exact_geodesic_point_raw,
     geod,
 )
 from .pairs import exact_pair_raw, has_compiled, projected_pair_raw
-from .points import exact_point_raw, projected_point_raw
+from .points import exact_against_raw, exact_point_raw, projected_point_raw
 
 __all__ = [
     "UNIT_ROUNDOFF",
@@ -59,4 +60,6 @@ __all__ = [
     "exact_geodesic_pair_raw",
     "exact_geodesic_point_raw",
     "exact_geodesic_cross_raw",
+    "exact_against_raw",
+    "exact_geodesic_against_raw",
 ]

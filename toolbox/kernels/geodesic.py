@@ -31,6 +31,7 @@ __all__ = [
     "exact_geodesic_pair_raw",
     "exact_geodesic_point_raw",
     "exact_geodesic_cross_raw",
+    "exact_geodesic_against_raw",
 ]
 
 #: pairs per block: the seven arrays pyproj reads and writes stay near 15 MB
@@ -222,3 +223,20 @@ def exact_geodesic_cross_raw(lay, a: float, f: float, tick: Ticker) -> Raw:
         relative=chain * UNIT_ROUNDOFF,
         absolute=_allowance(a) * symmetric(apart.result()),
     )
+
+
+def exact_geodesic_against_raw(alon, alat, blon, blat, bw, a: float, f: float) -> Raw:
+    """Exact ``Σ_j w_j s(a_i, b_j)`` of every point a_i against the set b (longitudes, latitudes)."""
+    geodesic = geod(a, f)
+    n = blon.size
+    total = np.zeros(alon.size)
+    apart = np.zeros(alon.size)
+    rows = max(1, BLOCK_PAIRS // max(n, 1))
+    for start in range(0, alon.size, rows):
+        i = np.repeat(np.arange(start, min(start + rows, alon.size)), n)
+        j = np.tile(np.arange(n), i.size // n if n else 0)
+        s = np.asarray(geodesic.inv(alon[i], alat[i], blon[j], blat[j])[2])
+        total += np.bincount(i, bw[j] * s, alon.size)
+        apart += np.bincount(i, bw[j] * (s > 0), alon.size)
+    chain = min(n, BLOCK_PAIRS) + 16
+    return Raw(total, 0, relative=chain * UNIT_ROUNDOFF, absolute=_allowance(a) * apart)
