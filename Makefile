@@ -14,7 +14,7 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
-$(COMPILED): $(STAMP) $(wildcard toolbox/kernels/*.py toolbox/kernels/*/*.py)
+$(COMPILED): $(STAMP) toolbox/precompile.py $(wildcard toolbox/kernels/*.py toolbox/kernels/*/*.py)
 	$(BIN)/python -m toolbox.precompile
 	touch $(COMPILED)
 
