@@ -14,7 +14,7 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
-$(COMPILED): $(STAMP) $(wildcard toolbox/kernels/*.py toolbox/kernels/*/*.py)
+$(COMPILED): $(STAMP) toolbox/precompile.py $(wildcard toolbox/kernels/*.py toolbox/kernels/*/*.py)
 	$(BIN)/python -m toolbox.precompile
 	touch $(COMPILED)
 
@@ -39,8 +39,7 @@ docs: $(STAMP)
 	$(BIN)/python -c "import toolbox.chain as c; c.main(['schema', 'docs/chain.schema.json'])"
 
 bench: $(COMPILED)
-	$(BIN)/python bench/bench_suite.py
-	$(BIN)/python bench/bench_cross_spread.py
+	$(BIN)/python bench/bench_suite.py --tests
 
 fuzz: $(COMPILED)
 	HYPOTHESIS_PROFILE=long $(BIN)/python -m pytest -q tests/test_properties.py

@@ -45,6 +45,7 @@ if str(BENCH_DIR) not in sys.path:  # the shared data generator and timing helpe
 
 import bench_group_spread as spread_bench  # noqa: E402
 import bench_startup as startup  # noqa: E402
+import bench_user_rows as user_rows  # noqa: E402
 
 import toolbox  # noqa: E402
 from toolbox import grouping, layers  # noqa: E402
@@ -937,6 +938,11 @@ def parse_args(argv=None) -> argparse.Namespace:
         help="where to write the table (default bench/results.md; quick: nowhere)",
     )
     parser.add_argument(
+        "--tests",
+        action="store_true",
+        help="also time make test's pytest part on a fresh clone (adds several minutes; make bench does)",
+    )
+    parser.add_argument(
         "--memory-case", choices=["exact", "kernel", "kernel-weighted"], help=argparse.SUPPRESS
     )
     parser.add_argument("--points", type=int, default=0, help=argparse.SUPPRESS)
@@ -994,8 +1000,18 @@ def main(argv=None) -> int:
     del points, arrays
     gc.collect()
     row_kernel_memory(rep, sizes)
+    user_rows.row_in_memory(rep, best_of, skewed_cluster(sizes.floor)[:2], args.repeat)
+    gc.collect()
+    remote_layer, made = spread_bench.ensure_data(sizes.floor // 5, sizes.layer_groups)
+    if made is not None:
+        print(f"(generated {remote_layer} in {made:.1f} s)", file=sys.stderr)
+    user_rows.row_remoteness_write(rep, best_of, remote_layer, args.repeat)
+    user_rows.row_cross(rep, best_of, sizes.layer_groups, 1_000, args.repeat)
+    gc.collect()
     startup.row_startup(rep, args.repeat)
     startup.row_first_run(rep, args.repeat, path, args.quick)
+    if args.tests:
+        user_rows.row_test_suite(rep, BENCH_DIR.parent)
 
     rep.close()
     for issue in (12, 5):

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import io
 import math
+import re
 
 import geopandas as gpd
 import numpy as np
@@ -23,10 +24,9 @@ import shapely
 from scipy.spatial.distance import pdist
 
 import toolbox
-from toolbox import geodesy, kernels
+from toolbox import estimate
 from toolbox.cli import main
 from toolbox.errors import InputError, ParameterError
-from toolbox.scripts.point_remoteness import point_remoteness
 
 #: the reference: Karney (2013) as implemented in PROJ and wrapped by pyproj
 GEOD = pyproj.Geod(ellps="WGS84")
@@ -41,6 +41,23 @@ EXTENTS = {
     "pole": (35.0, 88.0, 1000),  # reaches over the North Pole
 }
 TOLERANCES = (0.01, 1e-3)
+
+
+
+def geodesic_pair_sums(*args, **kw):
+    return estimate.grouped_pair_sums(*args, distance="geodesic", **kw)
+
+
+def geodesic_point_sums(*args, **kw):
+    return estimate.grouped_point_sums(*args, distance="geodesic", **kw)
+
+
+def geodesic_cross_sums(*args, **kw):
+    return estimate.cross_pair_sums(*args, distance="geodesic", **kw)
+
+
+def exact_pair_sums(*args, **kw):
+    return geodesic_pair_sums(*args, method="exact", **kw)
 
 
 def disc(rng, lon0, lat0, diameter_km, n):
@@ -90,7 +107,7 @@ def assert_bounded(total, lower, upper, rel_bound, truth, tolerance):
 def test_meridian_quadrant():
     # WGS 84 meridian quadrant (equator to pole) 10 001 965.729 m: a well-known value, quoted
     # from memory and equal to pyproj.Geod's 10 001 965.729 31 m.
-    r = kernels.exact_geodesic_pair_sums([0.0, 0.0], [0.0, 90.0], [0, 0], **WGS84)
+    r = exact_pair_sums([0.0, 0.0], [0.0, 90.0], [0, 0], **WGS84)
     assert r.total[0] == pytest.approx(10_001_965.729, abs=1e-3)
     assert r.upper[0] - r.lower[0] < 1e-6  # an exact sum carries only a round-off allowance
 
@@ -98,7 +115,7 @@ def test_meridian_quadrant():
 def test_equator_quadrant():
     # A quarter of the equator is a geodesic (shorter than (1 − f)·180°, the onset of the
     # equatorial cut locus, Karney 2013): its length is a·π/2 = 10 018 754.171 m.
-    r = kernels.exact_geodesic_pair_sums([0.0, 90.0], [0.0, 0.0], [0, 0], **WGS84)
+    r = exact_pair_sums([0.0, 90.0], [0.0, 0.0], [0, 0], **WGS84)
     assert r.total[0] == pytest.approx(WGS84["a"] * math.pi / 2, rel=1e-12)
 
 
@@ -106,7 +123,7 @@ def test_karney_direct_example():
     # Karney (2013), worked direct problem on WGS 84: from φ1 = 40°, α1 = 30°, s12 = 10 000 km
     # the end point is φ2 = 41.79331020506°, λ12 = 137.84490004377° (values quoted from
     # memory of the paper; pyproj.Geod.fwd reproduces them to 1e-11°, about 1 µm).
-    r = kernels.exact_geodesic_pair_sums([0.0, 137.84490004377], [40.0, 41.79331020506], [0, 0])
+    r = exact_pair_sums([0.0, 137.84490004377], [40.0, 41.79331020506], [0, 0])
     assert r.total[0] == pytest.approx(10_000_000.0, abs=1e-5)
 
 
@@ -116,7 +133,7 @@ def test_karney_inverse_example_nearly_antipodal(method):
     # s12 = 19 989 832.827 610 m (quoted from memory of the paper; pyproj.Geod agrees to 1 µm).
     # The two points are nearly antipodal: no local projection covers them, so even the
     # projection method falls back to exact sums for so small a group, and says so.
-    r = geodesy.grouped_geodesic_pair_sums([0.0, 179.8], [-30.0, 29.9], [0, 0], method=method)
+    r = geodesic_pair_sums([0.0, 179.8], [-30.0, 29.9], [0, 0], method=method)
     assert r.total[0] == pytest.approx(19_989_832.827_610, abs=1e-5)
     assert r.exact[0] and r.directions[0] == 0
 
@@ -163,7 +180,7 @@ def test_group_layout_straddles_what_it_should(groups):
 @pytest.mark.parametrize("method", ["auto", "projection"])
 def test_estimates_bounded_against_geod(groups, tolerance, method):
     lon, lat, code, _, truth = groups
-    r = geodesy.grouped_geodesic_pair_sums(lon, lat, code, tolerance=tolerance, method=method)
+    r = geodesic_pair_sums(lon, lat, code, tolerance=tolerance, method=method)
     assert_bounded(r.total, r.lower, r.upper, r.rel_bound, truth[0], tolerance)
     names = list(EXTENTS)
     local = ~r.exact
@@ -175,7 +192,7 @@ def test_estimates_bounded_against_geod(groups, tolerance, method):
 
 def test_weighted_estimates_bounded_against_geod(groups):
     lon, lat, code, weights, truth = groups
-    r = geodesy.grouped_geodesic_pair_sums(lon, lat, code, weights=weights, tolerance=0.01)
+    r = geodesic_pair_sums(lon, lat, code, weights=weights, tolerance=0.01)
     assert_bounded(r.total, r.lower, r.upper, r.rel_bound, truth[1], 0.01)
     ww = np.array([np.sum(weights[code == g]) ** 2 - np.sum(weights[code == g] ** 2) for g in range(5)]) / 2
     np.testing.assert_allclose(r.pair_weight, ww, rtol=1e-12)
@@ -187,7 +204,7 @@ def test_exact_matches_geod(groups):
     for g in range(len(EXTENTS)):
         keep[np.flatnonzero(code == g)[:300]] = True
     lon, lat, code, weights = lon[keep], lat[keep], code[keep], weights[keep]
-    r = geodesy.grouped_geodesic_pair_sums(lon, lat, code, weights=weights, tolerance=0)
+    r = geodesic_pair_sums(lon, lat, code, weights=weights, tolerance=0)
     for g in range(len(EXTENTS)):
         members = code == g
         truth = reference_total(lon[members], lat[members], weights[members])
@@ -195,7 +212,7 @@ def test_exact_matches_geod(groups):
         assert r.lower[g] * (1 - 1e-12) <= truth <= r.upper[g] * (1 + 1e-12)
         assert r.exact[g] and r.rel_bound[g] < 1e-9
     # --method exact at a non-zero tolerance is the same computation
-    again = geodesy.grouped_geodesic_pair_sums(lon, lat, code, weights=weights, method="exact")
+    again = geodesic_pair_sums(lon, lat, code, weights=weights, method="exact")
     np.testing.assert_array_equal(again.total, r.total)
 
 
@@ -210,7 +227,7 @@ def test_local_frame_distortion_matches_spherical_formula():
         lon, lat, _ = sphere.fwd(
             [10.0] * 3, [50.0] * 3, [0.0, 120.0, 240.0], [c_deg * math.pi / 180 * radius] * 3
         )
-        frame = geodesy.local_frame(np.r_[lon, 10.0], np.r_[lat, 50.0], a=radius, f=0.0)
+        frame = estimate.local_frame(np.r_[lon, 10.0], np.r_[lat, 50.0], a=radius, f=0.0)
         c = math.radians(frame.radius_deg)
         assert frame.usable and frame.k_min <= 1.0
         assert c / math.sin(c) <= frame.k_max <= 1 + 1.05 * (c / math.sin(c) - 1) + 1e-7
@@ -220,9 +237,9 @@ def test_planar_tolerance_combines_exactly():
     # Folding a planar estimate of relative error e into [k_min, k_max] must give exactly the
     # requested tolerance at the planar tolerance chosen for it (algebra in docs/method.md).
     for tolerance, k_min, k_max in ((0.01, 1.0, 1.004), (1e-3, 0.9999, 1.0002), (0.3, 1.0, 1.2)):
-        e = geodesy.planar_tolerance(tolerance, k_min, k_max)
+        e = estimate.planar_tolerance(tolerance, k_min, k_max)
         lo_p, hi_p = 1 / (1 + e), 1 / (1 - e)  # the planar interval around an estimate of 1
-        _, lo, hi, bound = geodesy.fold_distortion(1.0, lo_p, hi_p, k_min, k_max)
+        _, lo, hi, bound = estimate.fold_distortion(1.0, lo_p, hi_p, k_min, k_max)
         assert float(bound) == pytest.approx(tolerance, rel=1e-9)
 
 
@@ -235,10 +252,10 @@ def test_point_sums_against_geod():
     weights = rng.integers(1, 5, lon.size).astype(float)
     truth = np.concatenate([reference_rows(p[0], p[1], weights[code == g]) for g, p in enumerate(parts)])
     for tolerance in TOLERANCES:
-        r = geodesy.grouped_geodesic_point_sums(lon, lat, code, weights=weights, tolerance=tolerance)
+        r = geodesic_point_sums(lon, lat, code, weights=weights, tolerance=tolerance)
         assert not r.exact.any()
         assert_bounded(r.total, r.lower, r.upper, r.rel_bound, truth, tolerance)
-    r = geodesy.grouped_geodesic_point_sums(lon, lat, code, weights=weights, tolerance=0)
+    r = geodesic_point_sums(lon, lat, code, weights=weights, tolerance=0)
     np.testing.assert_allclose(r.total, truth, rtol=1e-9)
     assert r.exact.all()
 
@@ -261,10 +278,10 @@ def test_cross_sums_against_geod():
                 i, j = np.meshgrid(np.arange(300), np.arange(300), indexing="ij")
                 truth[a, b] = GEOD.inv(la[i.ravel()], pa[i.ravel()], lb[j.ravel()], pb[j.ravel()])[2].sum()
     for tolerance in (0.01,):
-        r = geodesy.geodesic_cross_pair_sums(lon, lat, code, tolerance=tolerance, method="projection")
+        r = geodesic_cross_sums(lon, lat, code, tolerance=tolerance, method="projection")
         assert not r.exact.any()
         assert_bounded(r.total, r.lower, r.upper, r.rel_bound, truth, tolerance)
-    r = geodesy.geodesic_cross_pair_sums(lon, lat, code, tolerance=0)
+    r = geodesic_cross_sums(lon, lat, code, tolerance=0)
     np.testing.assert_allclose(r.total, truth, rtol=1e-9)
 
 
@@ -273,33 +290,40 @@ def test_wide_small_groups_fall_back_to_exact():
     rng = np.random.default_rng(3)
     lon = rng.uniform(-180, 180, 120)
     lat = np.degrees(np.arcsin(rng.uniform(-1, 1, 120)))
-    frame = geodesy.local_frame(lon, lat)
+    frame = estimate.local_frame(lon, lat)
     assert not frame.usable
-    r = geodesy.grouped_geodesic_pair_sums(lon, lat, np.zeros(120, dtype=int), method="projection")
+    r = geodesic_pair_sums(lon, lat, np.zeros(120, dtype=int), method="projection")
     assert r.exact[0] and r.total[0] == pytest.approx(reference_total(lon, lat), rel=1e-9)
-    c = geodesy.geodesic_cross_pair_sums(lon, lat, np.arange(120) % 2, method="projection")
+    c = geodesic_cross_sums(lon, lat, np.arange(120) % 2, method="projection")
     assert c.exact.all()
 
 
 def test_wide_large_group_is_refused():
+    # refused with a note and NaN sums, never raised: one bad group must not sink the others
     rng = np.random.default_rng(5)
-    n = geodesy.EXACT_FALLBACK_POINTS + 1
+    n = estimate.EXACT_FALLBACK_POINTS + 1
     lon, lat = rng.uniform(-180, 180, n), rng.uniform(-60, 60, n)
-    with pytest.raises(InputError, match=r"from its centre.*too many for exact geodesic sums"):
-        geodesy.grouped_geodesic_pair_sums(lon, lat, np.zeros(n, dtype=int))
+    near_lon, near_lat = disc(rng, 10.0, 50.0, 20, 50)
+    codes = np.r_[np.zeros(n, dtype=int), np.ones(50, dtype=int)]
+    r = geodesic_pair_sums(np.r_[lon, near_lon], np.r_[lat, near_lat], codes)
+    assert re.search(r"from its centre.*too many for exact geodesic sums", r.note[0])
+    assert np.isnan(r.total[0]) and r.method[0] is None
+    assert r.note[1] == "" and r.total[1] == pytest.approx(reference_total(near_lon, near_lat), rel=0.01)
+    p = geodesic_point_sums(lon, lat, np.zeros(n, dtype=int))
+    assert "too many for exact geodesic sums" in p.note[0] and np.isnan(p.total).all()
+    c = geodesic_cross_sums(lon, lat, np.arange(n) % 2)
+    assert "combined set of points" in c.note[0, 1] and np.isnan(c.total[0, 1])
     with pytest.raises(InputError, match="too many for exact geodesic sums"):
-        geodesy.grouped_geodesic_point_sums(lon, lat, np.zeros(n, dtype=int))
-    with pytest.raises(InputError, match="combined set of points"):
-        geodesy.geodesic_cross_pair_sums(lon, lat, np.arange(n) % 2)
+        estimate.raise_for_notes(r)
 
 
 def test_large_group_too_distorted_for_the_tolerance_is_refused():
     # a continental group at a tolerance its local projection alone cannot meet
     rng = np.random.default_rng(9)
-    n = geodesy.EXACT_FALLBACK_POINTS + 1
+    n = estimate.EXACT_FALLBACK_POINTS + 1
     lon, lat = disc(rng, 21.0, 4.0, 5000, n)
-    with pytest.raises(InputError, match=r"distorts distances.*tolerance of at least"):
-        geodesy.grouped_geodesic_pair_sums(lon, lat, np.zeros(n, dtype=int), tolerance=1e-4)
+    r = geodesic_pair_sums(lon, lat, np.zeros(n, dtype=int), tolerance=1e-4)
+    assert re.search(r"distorts distances.*tolerance of at least", r.note[0]) and np.isnan(r.total[0])
 
 
 # --------------------------------------------------------------------------------------------
@@ -399,7 +423,7 @@ def test_cli_hemisphere_group(capsys, tmp_path):
     assert table["method"][0] == "exact"
     assert table["total_dist"][0] == pytest.approx(reference_total(lon, lat), rel=1e-9)
     # large: a clear error, never a silent number
-    n = geodesy.EXACT_FALLBACK_POINTS + 1
+    n = estimate.EXACT_FALLBACK_POINTS + 1
     big = gpd.GeoDataFrame(
         geometry=shapely.points(rng.uniform(-180, 180, n), rng.uniform(-70, 70, n)), crs="EPSG:4326"
     )
@@ -421,7 +445,7 @@ def test_projected_layer_unchanged(homes, reference, by_key, same_table):
             assert got[key]["total_dist"] == pytest.approx(ref["total_dist"], rel=1e-9)
     estimate = toolbox.group_spread(homes, group_by="zone", weight="pop")
     codes = toolbox.grouping.group_features(homes, ["zone"]).codes
-    direct = kernels.grouped_pair_sums(
+    direct = toolbox.grouped_pair_sums(
         homes.geometry.x.to_numpy(), homes.geometry.y.to_numpy(), codes, None, homes["pop"].to_numpy(float)
     )
     np.testing.assert_array_equal(estimate["total_dist"].to_numpy(), direct.total)
@@ -442,7 +466,7 @@ def test_projected_layer_geodesic_on_request(homes):
 
 def test_point_remoteness_geodesic(lonlat_gpkg):
     frame, _ = lonlat_gpkg
-    out = point_remoteness(frame, group_by=["zone"], tolerance=1e-3)
+    out = toolbox.point_remoteness(frame, group_by=["zone"], tolerance=1e-3)
     for _, rows in frame.groupby("zone"):
         lon, lat = rows.geometry.x.to_numpy(), rows.geometry.y.to_numpy()
         mean = reference_rows(lon, lat) / (lon.size - 1)
@@ -490,6 +514,6 @@ def test_latitudes_beyond_90_are_refused():
 
 def test_kernel_checks():
     with pytest.raises(ParameterError, match="latitude"):
-        kernels.exact_geodesic_pair_sums([0.0, 0.0], [0.0, 91.0], [0, 0])
+        exact_pair_sums([0.0, 0.0], [0.0, 91.0], [0, 0])
     with pytest.raises(ParameterError, match="flattening"):
-        kernels.exact_geodesic_pair_sums([0.0, 0.0], [0.0, 1.0], [0, 0], f=0.2)
+        exact_pair_sums([0.0, 0.0], [0.0, 1.0], [0, 0], f=0.2)

@@ -36,7 +36,7 @@ from hypothesis import strategies as st
 from hypothesis.configuration import set_hypothesis_home_dir
 
 import toolbox
-from toolbox.kernels import directions_for_tolerance
+from toolbox.estimate import directions_for_tolerance
 
 settings.register_profile(
     "ci",

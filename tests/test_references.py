@@ -361,7 +361,7 @@ def test_two_directions_in_the_kernel():
 
 
 def test_public_names_are_exported():
-    # the kernels are also reachable from the package root (toolbox/__init__.py's __all__)
+    # the estimator functions are also reachable from the package root (toolbox/__init__.py's __all__)
     for name in (
         "pair_distance_sum",
         "grouped_pair_sums",
@@ -371,4 +371,4 @@ def test_public_names_are_exported():
         "projection_factors",
     ):
         assert name in toolbox.__all__
-        assert getattr(toolbox, name) is getattr(toolbox.kernels, name)
+        assert getattr(toolbox, name) is getattr(toolbox.estimate, name)

@@ -2,7 +2,7 @@
 
 The scripts of the pack are declared in ``toolbox/manifest.toml``; each is a Python function here
 (``group_spread``), a subcommand of the ``pairspread`` command line, and reachable through
-:func:`run`. The array kernels (numpy in, numbers out) are public too.
+:func:`run`. The estimator layer (``toolbox.estimate``: points in, sums with intervals out) is public too.
 
 Importing the package is cheap: every public name below is loaded on first use (module
 ``__getattr__``), so ``pairspread list``, ``--version`` and ``--help`` never import numpy,
@@ -31,10 +31,6 @@ _LAZY = {
     "run": ".runner",
     "run_chain": ".chain",
     **dict.fromkeys(
-        ["grouped_geodesic_pair_sums", "grouped_geodesic_point_sums", "geodesic_cross_pair_sums"],
-        ".geodesy",
-    ),
-    **dict.fromkeys(
         [
             "CrossPairSums",
             "GroupPairSums",
@@ -42,9 +38,6 @@ _LAZY = {
             "PointSums",
             "cross_pair_sums",
             "directions_for_tolerance",
-            "exact_geodesic_cross_sums",
-            "exact_geodesic_pair_sums",
-            "exact_geodesic_point_sums",
             "exact_pair_sum",
             "grouped_pair_sums",
             "grouped_point_sums",
@@ -53,26 +46,22 @@ _LAZY = {
             "projection_error",
             "projection_factors",
         ],
-        ".kernels",
+        ".estimate",
     ),
 }
 _SUBMODULES = {
-    "api", "chain", "cli", "errors", "geodesy", "grouping", "kernels", "layers", "manifest", "runner", "scripts"
+    "api", "chain", "cli", "errors", "estimate", "grouping", "kernels", "layers", "manifest", "runner", "scripts"
 }
 
 if TYPE_CHECKING:  # the names as type checkers and editors should see them
     from .chain import run_chain
-    from .geodesy import geodesic_cross_pair_sums, grouped_geodesic_pair_sums, grouped_geodesic_point_sums
-    from .kernels import (
+    from .estimate import (
         CrossPairSums,
         GroupPairSums,
         PairSum,
         PointSums,
         cross_pair_sums,
         directions_for_tolerance,
-        exact_geodesic_cross_sums,
-        exact_geodesic_pair_sums,
-        exact_geodesic_point_sums,
         exact_pair_sum,
         grouped_pair_sums,
         grouped_point_sums,
@@ -118,12 +107,6 @@ __all__ = [
     "cross_pair_sums",
     "PointSums",
     "CrossPairSums",
-    "grouped_geodesic_pair_sums",
-    "grouped_geodesic_point_sums",
-    "geodesic_cross_pair_sums",
-    "exact_geodesic_pair_sums",
-    "exact_geodesic_point_sums",
-    "exact_geodesic_cross_sums",
     "pair_distance_sum",
     "grouped_pair_sums",
     "exact_pair_sum",

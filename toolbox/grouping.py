@@ -93,7 +93,7 @@ def planar_units(crs, label: str) -> str:
 
     A missing CRS is allowed with a warning: distances are then in the layer's own units.
     Which distance a layer gets (planar, geodesic, or planar after --crs) is decided first by
-    :func:`toolbox.geodesy.distance_setup`; this is its planar branch.
+    :func:`toolbox.estimate.distance_setup`; this is its planar branch.
     """
     if crs is None:
         warnings.warn(

@@ -37,7 +37,8 @@ def precompile() -> float | None:
         return None
     import numpy as np
 
-    from . import kernels
+    from . import estimate
+    from .kernels import energy
 
     start = time.perf_counter()
     rng = np.random.default_rng(20260601)
@@ -49,11 +50,15 @@ def precompile() -> float | None:
     for w in (None, weights):
         for tolerance in (0.01, 1e-6):  # the tight one also takes the spatially ordered route
             for threads in (1, None):
-                kernels.grouped_pair_sums(
+                estimate.grouped_pair_sums(
                     x, y, codes, 3, w, tolerance=tolerance, method="projection", threads=threads
                 )
-        kernels.grouped_point_sums(x, y, codes, 3, w, method="projection")
-        kernels.cross_pair_sums(x, y, codes, 3, w, method="projection")
+        estimate.grouped_point_sums(x, y, codes, 3, w, method="projection")
+        estimate.cross_pair_sums(x, y, codes, 3, w, method="projection")
+        for samples in (2, 3):  # spread-contrast: energy distance (two samples) and DISCO
+            energy.energy_test(
+                x, y, codes % samples, w, method="projection", permutations=9, seed=1
+            )
     return time.perf_counter() - start
 
 

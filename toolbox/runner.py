@@ -19,13 +19,26 @@ from .progress import ProgressLine
 __all__ = ["run", "run_script"]
 
 
-def _inputs(values: dict[str, Any]) -> list[tuple[str, str | None]]:
-    """The (path, layer) pairs a script reads, which its output must never replace."""
-    found = []
-    for data, layer in (("data", "layer"), ("to", "to_layer")):
-        if isinstance(values.get(data), (str, os.PathLike)):
-            found.append((os.fspath(values[data]), values.get(layer)))
-    return found
+#: parameter kinds the runner acts on: datasets read (each with the layer parameter declared
+#: after it), the result file and the name of the result inside it
+LAYER_KIND = "layer-in-dataset"
+RESULT_WHAT = {"result-table-file": "table", "result-layer-file": "layer"}
+RESULT_NAME_KIND = "name-in-file"
+
+
+def _inputs(script: Script, values: dict[str, Any]) -> list[tuple[str, str | None]]:
+    """The (path, layer) pairs a script reads, which its output must never replace.
+
+    Every dataset parameter is paired with the layer parameter declared after it (and before
+    the next dataset), so a script declares what it reads by the kinds of its parameters.
+    """
+    found: list[list] = []
+    for p in script.params:
+        if p.kind in DATASET_KINDS:
+            found.append([values.get(p.name), None])
+        elif p.kind == LAYER_KIND and found and found[-1][1] is None:
+            found[-1][1] = values.get(p.name)
+    return [(os.fspath(data), layer) for data, layer in found if isinstance(data, (str, os.PathLike))]
 
 
 def _is_dash(value: Any) -> bool:
@@ -79,20 +92,21 @@ def _run_script(
 
     values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
-    target = next((p for p in script.params if p.kind in ("result-table-file", "result-layer-file")), None)
+    target = next((p for p in script.params if p.kind in RESULT_WHAT), None)
     output = values.get(target.name) if target else None
-    what = "layer" if target is not None and target.kind == "result-layer-file" else "table"
+    name = next((values.get(p.name) for p in script.params if p.kind == RESULT_NAME_KIND), None)
+    what = RESULT_WHAT[target.kind] if target is not None else "table"
     if values.get("output_on") == "regions" or values.get("group_shape") in ("hull", "centre"):
         what = "layer"  # the result then carries geometries
     where = dict(
         what=what,
-        layer_name=values.get("output_layer") or "",
+        layer_name=name or "",
         overwrite=bool(values.get("overwrite")),
         stdout_as=values.get("output_format"),
     )
     sidecar = not values.get("no_sidecar")
     if output is not None:
-        layers.check_output(output, inputs=_inputs(values), sidecar=sidecar, **where)
+        layers.check_output(output, inputs=_inputs(script, values), sidecar=sidecar, **where)
     elif values.get("output_format") is not None:
         raise ParameterError(
             f"{spell('output_format')} applies to {spell('output', '-')} (standard output) only."

@@ -1,40 +1,65 @@
-"""Array kernels: sums of pair distances, exact or by projection, with guaranteed intervals.
+"""Array kernels: sums of pair distances, exact or projected onto directions.
 
-numpy arrays in, numbers or arrays out. Nothing here reads files, knows about CRS objects or
-prints; progress is reported through an optional callback ``progress(done, total)``. The
-geodesic kernels take longitudes, latitudes and an ellipsoid's ``a`` and ``f`` as numbers.
+numpy arrays in, :class:`Raw` records out: the sums and the rounding allowance of the kernel's
+own arithmetic. Nothing here reads files, knows about CRS objects or prints, and nothing here
+makes intervals: ``toolbox.estimate`` does that, in one place. Progress is reported through a
+callback. The geodesic kernels take longitudes, latitudes and an ellipsoid's ``a`` and ``f``.
 """
 
+from . import costs
 from ._common import (
-    METHODS,
-    directions_for_tolerance,
-    projection_directions,
-    projection_error,
-    projection_factors,
+    UNIT_ROUNDOFF,
+    GroupLayout,
+    Progress,
+    Raw,
+    Ticker,
+    centre,
+    check_groups,
+    check_points,
     thread_limit,
+    weights_of_others,
 )
-from .cross import CrossPairSums, cross_pair_sums
-from .geodesic import exact_geodesic_cross_sums, exact_geodesic_pair_sums, exact_geodesic_point_sums
-from .pairs import GroupPairSums, PairSum, exact_pair_sum, grouped_pair_sums, pair_distance_sum
-from .points import PointSums, grouped_point_sums
+from .cross import MAX_CROSS_GROUPS, exact_cross_raw, projected_cross_raw
+from .geodesic import (
+    WGS84_A,
+    WGS84_F,
+    check_lonlat,
+    exact_geodesic_against_raw,
+    exact_geodesic_cross_raw,
+    exact_geodesic_pair_raw,
+    exact_geodesic_point_raw,
+    geod,
+)
+from .pairs import exact_pair_raw, has_compiled, projected_pair_raw
+from .points import exact_against_raw, exact_point_raw, projected_point_raw
 
 __all__ = [
-    "METHODS",
-    "GroupPairSums",
-    "PairSum",
-    "directions_for_tolerance",
-    "projection_error",
-    "projection_directions",
-    "projection_factors",
+    "UNIT_ROUNDOFF",
+    "MAX_CROSS_GROUPS",
+    "WGS84_A",
+    "WGS84_F",
+    "costs",
+    "GroupLayout",
+    "Progress",
+    "Raw",
+    "Ticker",
+    "centre",
+    "check_groups",
+    "check_points",
+    "check_lonlat",
+    "geod",
     "thread_limit",
-    "exact_pair_sum",
-    "pair_distance_sum",
-    "grouped_pair_sums",
-    "PointSums",
-    "grouped_point_sums",
-    "CrossPairSums",
-    "cross_pair_sums",
-    "exact_geodesic_pair_sums",
-    "exact_geodesic_point_sums",
-    "exact_geodesic_cross_sums",
+    "weights_of_others",
+    "has_compiled",
+    "exact_pair_raw",
+    "projected_pair_raw",
+    "exact_point_raw",
+    "projected_point_raw",
+    "exact_cross_raw",
+    "projected_cross_raw",
+    "exact_geodesic_pair_raw",
+    "exact_geodesic_point_raw",
+    "exact_geodesic_cross_raw",
+    "exact_against_raw",
+    "exact_geodesic_against_raw",
 ]

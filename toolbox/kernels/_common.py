@@ -1,4 +1,4 @@
-"""Pieces every kernel shares: checks, the group layout, direction counts, intervals, costs."""
+"""Pieces every kernel shares: checks, the one group layout, directions, the raw-sums record."""
 
 from __future__ import annotations
 
@@ -12,8 +12,6 @@ import numpy as np
 
 from ..errors import ParameterError
 
-METHODS = ("auto", "exact", "projection")
-
 #: unit roundoff of float64
 UNIT_ROUNDOFF = np.finfo(np.float64).eps / 2
 #: elements per block of the exact kernels and per chunk of the padded projection layout;
@@ -25,132 +23,45 @@ SMALL_EXACT = 64
 Progress = Callable[[int, int], None]
 
 
-def projection_error(directions: int) -> float:
-    """Guaranteed relative error of the projection estimate with ``directions`` directions.
-
-    Parameters
-    ----------
-    directions : int
-        Number of equally spaced directions ``m`` (at least 1).
-
-    Returns
-    -------
-    float
-        ``tan²(π / (4m))``.
-
-    Examples
-    --------
-    >>> round(projection_error(8), 5)
-    0.0097
-    """
-    if directions < 1:
-        raise ParameterError(f"directions must be at least 1. Got {directions} instead.")
-    return math.tan(math.pi / (4 * directions)) ** 2
-
-
-def directions_for_tolerance(tolerance: float) -> int:
-    """Fewest directions whose guaranteed relative error does not exceed ``tolerance``.
-
-    Parameters
-    ----------
-    tolerance : float
-        Relative error bound, in (0, 0.5].
-
-    Returns
-    -------
-    int
-        The smallest ``m`` with ``tan²(π/(4m)) ≤ tolerance``, i.e. ``ceil(π / (4·arctan √ε))``.
-        A margin of one part in a million is kept for the rounding terms the kernels add.
-
-    Examples
-    --------
-    >>> directions_for_tolerance(0.01), directions_for_tolerance(1e-6)
-    (8, 786)
-    """
-    if not (0 < tolerance <= 0.5) or math.isnan(tolerance):
-        raise ParameterError(
-            f"The tolerance must be in (0, 0.5] for the projection estimate. Got {tolerance!r} "
-            "instead; use 0 with the exact method."
-        )
-    target = tolerance * (1 - 1e-6)
-    m = max(2, math.ceil(math.pi / (4 * math.atan(math.sqrt(target)))))
-    while projection_error(m) > target:
-        m += 1
-    while m > 2 and projection_error(m - 1) <= target:
-        m -= 1
-    return m
-
-
-#: share of the tolerance the directions leave unused for in-bucket uncertainty and rounding
-RESERVE = 0.01
-
-
-def projection_directions(tolerance: float) -> int:
-    """Directions the group-total kernel uses for ``tolerance``.
-
-    The fewest that meet the tolerance (:func:`directions_for_tolerance`), unless they leave
-    less than 1 % of it unused; then the fewest that meet 99 % of it, so that the bucketed sums
-    have room for their in-bucket uncertainty without sorting (1e-6 takes 790, not 786).
-
-    Examples
-    --------
-    >>> projection_directions(0.01), projection_directions(1e-4), projection_directions(1e-6)
-    (8, 79, 790)
-    """
-    m = directions_for_tolerance(tolerance)
-    if tolerance - projection_error(m) < RESERVE * tolerance:
-        m = directions_for_tolerance(tolerance * (1 - RESERVE))
-    return m
-
-
-def projection_factors(directions: int) -> tuple[float, float, float]:
-    """Factors turning the summed projections ``F`` into bounds and the estimate.
-
-    Parameters
-    ----------
-    directions : int
-        Number of equally spaced directions ``m``.
-
-    Returns
-    -------
-    lower, upper, estimate : float
-        ``sin x``, ``tan x`` and ``2 tan(x/2)`` with ``x = π/(2m)``: the true total lies in
-        ``[lower·F, upper·F]`` and ``estimate·F`` is the estimate.
-
-    Examples
-    --------
-    >>> [round(f, 6) for f in projection_factors(2)]
-    [0.707107, 1.0, 0.828427]
-    """
-    x = math.pi / (2 * directions)
-    return math.sin(x), math.tan(x), 2 * math.tan(x / 2)
-
-
 def directions_unit_vectors(m: int) -> tuple[np.ndarray, np.ndarray]:
+    """Unit vectors of ``m`` equally spaced directions over half a turn."""
     angles = np.arange(m) * (math.pi / m)
     return np.cos(angles), np.sin(angles)
 
 
-def crofton_interval(summed, slack, m):
-    """Estimate, guaranteed bounds and relative bound from summed projections ``F ± slack``.
+@dataclass(frozen=True)
+class Raw:
+    """A kernel's sums before their interval (``toolbox.estimate.interval`` makes that).
 
-    The slack grows by (m + 4)·u·F for adding up the m directions and the final products.
+    ``value`` holds exact sums (``directions`` 0) or the summed projections ``F`` over
+    ``directions`` directions, of which the true ones lie in ``[value, value + uncertain]``
+    (pairs sharing a bin) up to rounding. ``relative`` and ``absolute`` bound the rounding of
+    the kernel's own arithmetic; ``radius_mass`` bounds ``Σ w_i w_j (r_i + r_j)`` over the
+    pairs summed, ``r`` the points' distances from the centre subtracted, for the centring
+    allowance (0 when ``absolute`` already covers it).
     """
-    lo_f, hi_f, est_f = projection_factors(m)
-    # projected sums are sums of non-negative terms: rounding noise below 0 is 0
-    summed = np.maximum(np.asarray(summed, dtype=np.float64), 0.0)
-    slack = slack + (m + 4) * UNIT_ROUNDOFF * summed
-    est = est_f * summed
-    lo = lo_f * np.maximum(summed - slack, 0.0)
-    hi = hi_f * (summed + slack)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rb = np.maximum(np.where(lo > 0, est / lo - 1, np.inf), 1 - est / hi)
-    return est, lo, hi, np.where(hi > 0, rb, 0.0)
 
+    value: np.ndarray | float
+    directions: int
+    relative: np.ndarray | float = 0.0
+    absolute: np.ndarray | float = 0.0
+    uncertain: np.ndarray | float = 0.0
+    radius_mass: np.ndarray | float = 0.0
 
-def centring_slack(weight_sum, radius_sum):
-    """Absolute allowance for centring: each pair's distance may be off by u·(r_i + r_j)·√2."""
-    return 2 * math.sqrt(2) * UNIT_ROUNDOFF * weight_sum * radius_sum
+    def take(self, index) -> Raw:
+        """The entries ``index`` of every per-entry array."""
+
+        def pick(v):
+            return v[index] if np.ndim(v) else v
+
+        return Raw(
+            pick(self.value),
+            self.directions,
+            pick(self.relative),
+            pick(self.absolute),
+            pick(self.uncertain),
+            pick(self.radius_mass),
+        )
 
 
 def exact_rounding(n_terms):
@@ -160,19 +71,6 @@ def exact_rounding(n_terms):
     within (n + 8)·u of the exact one (the additions plus the rounding of each distance).
     """
     return (np.asarray(n_terms, dtype=np.float64) + 8) * UNIT_ROUNDOFF
-
-
-def check_method(method: str, tolerance: float) -> int:
-    """Validate ``method`` and ``tolerance``; returns the directions needed (0 when exact)."""
-    if method not in METHODS:
-        raise ParameterError(f"method must be one of {', '.join(METHODS)}. Got {method!r} instead.")
-    if not (0 <= tolerance <= 0.5) or math.isnan(tolerance):
-        raise ParameterError(f"The tolerance must be in [0, 0.5]. Got {tolerance!r} instead.")
-    if method == "projection" and tolerance == 0:
-        raise ParameterError(
-            "The projection method needs a tolerance above 0; use method 'exact' for exact sums."
-        )
-    return 0 if tolerance == 0 or method == "exact" else directions_for_tolerance(tolerance)
 
 
 def check_points(x, y, weights):
@@ -276,7 +174,9 @@ class GroupLayout:
     weight_sum: np.ndarray
 
     @classmethod
-    def build(cls, x, y, groups, n_groups, weights) -> GroupLayout:
+    def build(cls, x, y, groups, n_groups, weights, *, centred: bool = True) -> GroupLayout:
+        """Sort the points by group; ``centred`` False keeps the coordinates as they are
+        (longitudes and latitudes for the geodesic kernels)."""
         # points already in group order (one group, say) are not copied into a new order
         ordered = n_groups == 1 or bool(np.all(groups[1:] >= groups[:-1]))
         order = None
@@ -288,7 +188,7 @@ class GroupLayout:
             weights = None if weights is None else weights[order]
         counts = np.bincount(groups, minlength=n_groups).astype(np.int64)
         starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
-        xs, ys = centre(x, y, groups, n_groups, weights)
+        xs, ys = centre(x, y, groups, n_groups, weights) if centred else (x, y)
         # unweighted: a read-only view of ones, not an array of them
         wpt = np.broadcast_to(1.0, xs.shape) if weights is None else weights
         weight_sum = counts.astype(np.float64) if weights is None else np.bincount(groups, weights, n_groups)
@@ -386,29 +286,6 @@ def weights_of_others(groups, n_groups: int, weights) -> tuple[np.ndarray, np.nd
     n = np.asarray(groups).size
     lay = GroupLayout.build(np.zeros(n), np.zeros(n), np.asarray(groups), n_groups, weights)
     return lay.unsort(lay.other_weight()), lay.pair_weight()
-
-
-def cost_exact(n):
-    # measured on the project's 2-core machines: about 2.5 ns per ordered pair with cdist blocks
-    return 2.5e-9 * n * n
-
-
-def cost_projection(n, m, weighted):
-    # per point and direction: projection, row sort (argsort and gathers when weighted), sums
-    per = (25e-9 if weighted else 12e-9) + (2.5e-9 if weighted else 1e-9) * np.log2(n + 1)
-    return 2e-5 + m * n * per
-
-
-def split_methods(counts, live, m, method, weighted):
-    """Which live groups get exact sums (``method`` already checked; m == 0 means exact)."""
-    if m == 0:
-        use_exact = np.ones(live.size, dtype=bool)
-    elif method == "projection":
-        use_exact = np.zeros(live.size, dtype=bool)
-    else:
-        n = counts[live].astype(np.float64)
-        use_exact = cost_exact(n) <= cost_projection(n, m, weighted)
-    return live[use_exact], live[~use_exact]
 
 
 class Ticker:

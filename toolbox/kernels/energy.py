@@ -29,16 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import ParameterError
-from ._common import (
-    BLOCK_ELEMENTS,
-    UNIT_ROUNDOFF,
-    centre,
-    check_method,
-    check_points,
-    crofton_interval,
-    directions_unit_vectors,
-    projection_factors,
-)
+from ..estimate.interval import check_method, crofton_interval, projection_factors
+from ._common import BLOCK_ELEMENTS, UNIT_ROUNDOFF, centre, check_points, directions_unit_vectors
 
 __all__ = ["EnergyTest", "energy_test", "holm_adjust", "EXACT_MAX_POINTS", "MAX_PERMUTATIONS"]
 

@@ -13,32 +13,25 @@ pair, so exact geodesic sums are for groups of up to some tens of thousands of p
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterator
 
 import numpy as np
 
 from ..errors import ParameterError
-from ._common import (
-    UNIT_ROUNDOFF,
-    Progress,
-    Ticker,
-    check_groups,
-    check_points,
-    weights_of_others,
-)
-from .cross import MAX_CROSS_GROUPS, CrossPairSums
-from .pairs import GroupPairSums
-from .points import PointSums
+from ._common import UNIT_ROUNDOFF, Raw, Ticker, check_points
 
 __all__ = [
     "BLOCK_PAIRS",
     "WGS84_A",
     "WGS84_F",
     "check_lonlat",
-    "exact_geodesic_pair_sums",
-    "exact_geodesic_point_sums",
-    "exact_geodesic_cross_sums",
+    "geod",
+    "exact_geodesic_pair_raw",
+    "exact_geodesic_point_raw",
+    "exact_geodesic_cross_raw",
+    "exact_geodesic_against_raw",
 ]
 
 #: pairs per block: the seven arrays pyproj reads and writes stay near 15 MB
@@ -66,7 +59,9 @@ def check_lonlat(lon, lat, weights):
     return lon, lat, weights
 
 
-def _geod(a: float, f: float):
+@functools.cache
+def geod(a: float, f: float):
+    """The ``pyproj.Geod`` of the ellipsoid (a, f), checked, made once per ellipsoid."""
     import pyproj
 
     if not (math.isfinite(a) and a > 0):
@@ -143,263 +138,105 @@ def _bin(index, values):
     return unique, np.bincount(inverse.ravel(), values, unique.size)
 
 
-class _Layout:
-    """Points sorted by group, with the counts and weight sums every kernel needs."""
-
-    def __init__(self, lon, lat, groups, n_groups, weights):
-        self.order = np.argsort(groups, kind="stable")
-        self.codes = groups[self.order]
-        self.counts = np.bincount(self.codes, minlength=n_groups).astype(np.int64)
-        self.starts = np.concatenate([[0], np.cumsum(self.counts)[:-1]]).astype(np.int64)
-        self.lon, self.lat = lon[self.order], lat[self.order]
-        self.weighted = weights is not None
-        self.w = np.ones(lon.size) if weights is None else weights[self.order]
-        self.weight_sum = np.bincount(self.codes, self.w, n_groups)
-        self.other = weights_of_others(self.codes, n_groups, weights if weights is None else self.w)[0]
-
-    def distances(self, geod, i, j):
-        _, _, s = geod.inv(self.lon[i], self.lat[i], self.lon[j], self.lat[j])
-        return np.asarray(s, dtype=np.float64)
+def _distances(geodesic, lay, i, j):
+    _, _, s = geodesic.inv(lay.x[i], lay.y[i], lay.x[j], lay.y[j])
+    return np.asarray(s, dtype=np.float64)
 
 
-def _interval(total, rel, absolute):
-    """``[total(1 − rel) − absolute, total(1 + rel) + absolute]`` and its relative bound."""
-    lower = np.maximum(total * (1 - rel) - absolute, 0.0)
-    upper = total * (1 + rel) + absolute
-    with np.errstate(divide="ignore", invalid="ignore"):
-        bound = np.maximum(np.where(lower > 0, total / lower - 1, np.inf), 1 - total / upper)
-    return lower, upper, np.where(upper > 0, bound, 0.0)
+def _allowance(a):
+    return DISTANCE_ALLOWANCE * (a / WGS84_A)
 
 
-def exact_geodesic_pair_sums(
-    lon,
-    lat,
-    groups,
-    n_groups: int | None = None,
-    weights=None,
-    *,
-    a: float = WGS84_A,
-    f: float = WGS84_F,
-    progress: Progress | None = None,
-) -> GroupPairSums:
-    """Exact ``Σ_{i<j} w_i w_j s_ij`` of geodesic distances within every group.
+def exact_geodesic_pair_raw(lay, groups, a: float, f: float, tick: Ticker) -> Raw:
+    """Exact ``Σ_{i<j} w_i w_j s_ij`` of ``groups`` of a layout of longitudes and latitudes.
 
-    Parameters
-    ----------
-    lon, lat : array_like
-        Longitudes and latitudes in degrees.
-    groups : array_like of int
-        Group code of every point, in ``[0, n_groups)``.
-    n_groups : int, optional
-        Number of groups (default ``groups.max() + 1``).
-    weights : array_like, optional
-        Non-negative weights; all ones if omitted.
-    a, f : float
-        Semi-major axis (metres) and flattening of the ellipsoid; WGS 84 by default.
-    progress : callable, optional
-        Called as ``progress(done, total)`` in pairs.
-
-    Returns
-    -------
-    GroupPairSums
-        One entry per group; distances in metres. The interval allows for the summation's
-        rounding and 20 nm per distance (Karney's bound is 15 nm).
-
-    Examples
-    --------
-    >>> r = exact_geodesic_pair_sums([0, 0], [0, 90], [0, 0])  # a meridian quadrant of WGS 84
-    >>> round(float(r.total[0]), 3)
-    10001965.729
+    One entry per group of ``groups``; the allowance covers the summation's rounding and
+    20 nm per distance (Karney's bound is 15 nm).
     """
-    lon, lat, weights = check_lonlat(lon, lat, weights)
-    groups, n_groups = check_groups(groups, lon.size, n_groups)
-    geod = _geod(a, f)
-    lay = _Layout(lon, lat, groups, n_groups, weights)
+    geodesic = geod(a, f)
     counts = lay.counts
-    pair_weight = np.maximum(0.5 * np.bincount(lay.codes, lay.w * lay.other, n_groups), 0.0)
-    live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
-    tick = Ticker(progress, int((counts[live] * (counts[live] - 1) // 2).sum()))
-    total = _Compensated(n_groups)
-    apart = _Compensated(n_groups)  # weight of the pairs at a positive distance
-    for i, j, code in _pair_blocks(counts, lay.starts, live):
-        s = lay.distances(geod, i, j)
-        ww = lay.w[i] * lay.w[j]
-        index, sums = _bin(code, ww * s)
-        total.add(index, sums)
+    total = _Compensated(lay.n_groups)
+    apart = _Compensated(lay.n_groups)  # weight of the pairs at a positive distance
+    for i, j, code in _pair_blocks(counts, lay.starts, groups):
+        s = _distances(geodesic, lay, i, j)
+        ww = lay.wpt[i] * lay.wpt[j]
+        total.add(*_bin(code, ww * s))
         apart.add(*_bin(code, ww * (s > 0)))
         tick(i.size)
-
-    out = np.full(n_groups, np.nan)
-    lower, upper, bound = out.copy(), out.copy(), out.copy()
     chain = np.minimum(counts * (counts - 1) // 2, BLOCK_PAIRS) + 16
-    rel = chain * UNIT_ROUNDOFF
-    absolute = DISTANCE_ALLOWANCE * (a / WGS84_A) * apart.result()
-    sums = total.result()
-    out[live] = sums[live]
-    lower[live], upper[live], bound[live] = _interval(sums[live], rel[live], absolute[live])
-    exact = np.zeros(n_groups, dtype=bool)
-    exact[live] = True
-    return GroupPairSums(
-        n_points=counts,
-        weight_sum=lay.weight_sum,
-        pair_weight=pair_weight,
-        total=out,
-        lower=lower,
-        upper=upper,
-        rel_bound=bound,
-        exact=exact,
-        directions=np.zeros(n_groups, dtype=np.int64),
+    return Raw(
+        total.result()[groups],
+        0,
+        relative=chain[groups] * UNIT_ROUNDOFF,
+        absolute=_allowance(a) * apart.result()[groups],
     )
 
 
-def exact_geodesic_point_sums(
-    lon,
-    lat,
-    groups,
-    n_groups: int | None = None,
-    weights=None,
-    *,
-    a: float = WGS84_A,
-    f: float = WGS84_F,
-    progress: Progress | None = None,
-) -> PointSums:
-    """Exact ``Σ_j w_j s_ij`` from every point to the other points of its group.
-
-    Parameters are those of :func:`exact_geodesic_pair_sums`.
-
-    Returns
-    -------
-    PointSums
-        One entry per input point, in input order; distances in metres.
-
-    Examples
-    --------
-    >>> r = exact_geodesic_point_sums([0, 0, 90], [0, 90, 0], [0, 0, 0])
-    >>> [round(float(v) / 1e3, 3) for v in r.total]  # two quadrants each (meridian, equator)
-    [20020.72, 20003.931, 20020.72]
-    """
-    lon, lat, weights = check_lonlat(lon, lat, weights)
-    groups, n_groups = check_groups(groups, lon.size, n_groups)
-    geod = _geod(a, f)
-    lay = _Layout(lon, lat, groups, n_groups, weights)
-    counts = lay.counts
-    pair_weight = np.bincount(lay.codes, lay.w * lay.other, n_groups)
-    live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
-    n = lon.size
-    tick = Ticker(progress, int((counts[live] * (counts[live] - 1) // 2).sum()))
+def exact_geodesic_point_raw(lay, groups, a: float, f: float, tick: Ticker) -> Raw:
+    """Exact ``Σ_j w_j s_ij`` of every point of ``groups`` (one entry per point, group order)."""
+    geodesic = geod(a, f)
+    n = lay.x.size
     total = _Compensated(n)
     apart = _Compensated(n)
-    for i, j, _ in _pair_blocks(counts, lay.starts, live):
-        s = lay.distances(geod, i, j)
+    for i, j, _ in _pair_blocks(lay.counts, lay.starts, groups):
+        s = _distances(geodesic, lay, i, j)
         both = np.concatenate([i, j])
-        total.add(*_bin(both, np.concatenate([lay.w[j] * s, lay.w[i] * s])))
+        total.add(*_bin(both, np.concatenate([lay.wpt[j] * s, lay.wpt[i] * s])))
         positive = s > 0
-        apart.add(*_bin(both, np.concatenate([lay.w[j] * positive, lay.w[i] * positive])))
+        apart.add(*_bin(both, np.concatenate([lay.wpt[j] * positive, lay.wpt[i] * positive])))
         tick(i.size)
-
-    in_live = np.isin(lay.codes, live) & (lay.other > 0)
-    sums = np.where(in_live, total.result(), np.nan)
-    chain = np.minimum(2 * counts[lay.codes], BLOCK_PAIRS) + 16
-    lower, upper, bound = _interval(
-        sums, chain * UNIT_ROUNDOFF, DISTANCE_ALLOWANCE * (a / WGS84_A) * apart.result()
-    )
-    for array in (lower, upper, bound):
-        array[~in_live] = np.nan
-
-    def unsort(values):
-        out = np.empty_like(values)
-        out[lay.order] = values
-        return out
-
-    return PointSums(
-        total=unsort(sums),
-        lower=unsort(lower),
-        upper=unsort(upper),
-        rel_bound=unsort(bound),
-        other_weight=unsort(lay.other),
-        exact=unsort(in_live),
-        directions=np.zeros(n, dtype=np.int64),
-    )
+    chain = np.minimum(2 * lay.counts[lay.codes], BLOCK_PAIRS) + 16
+    return Raw(total.result(), 0, relative=chain * UNIT_ROUNDOFF, absolute=_allowance(a) * apart.result())
 
 
-def exact_geodesic_cross_sums(
-    lon,
-    lat,
-    groups,
-    n_groups: int | None = None,
-    weights=None,
-    *,
-    a: float = WGS84_A,
-    f: float = WGS84_F,
-    progress: Progress | None = None,
-) -> CrossPairSums:
-    """Exact geodesic totals between every pair of groups, and of each group with itself.
+def exact_geodesic_cross_raw(lay, a: float, f: float, tick: Ticker) -> Raw:
+    """Exact G × G geodesic cross sums; the diagonal holds each group's own pair total.
 
-    Every pair of points ``i < j`` of the whole set is visited once: its weighted distance goes
-    to the entry of its two groups. Off the diagonal, ``total[A, B]`` is
-    ``Σ_{a∈A, b∈B} w_a w_b s_ab``; on it, the group's own pair total, as in
-    :func:`~toolbox.kernels.cross_pair_sums`. Parameters are those of
-    :func:`exact_geodesic_pair_sums`.
-
-    Returns
-    -------
-    CrossPairSums
-        G × G matrices; distances in metres.
-
-    Examples
-    --------
-    >>> r = exact_geodesic_cross_sums([0, 0, 90], [0, 90, 0], [0, 1, 1])
-    >>> round(float(r.total[0, 1]) / 1e3, 3)  # from (0, 0): a meridian and an equatorial quadrant
-    20020.72
+    Every pair ``i < j`` of the whole set is visited once: its weighted distance goes to the
+    entry of its two groups.
     """
-    lon, lat, weights = check_lonlat(lon, lat, weights)
-    groups, n_groups = check_groups(groups, lon.size, n_groups)
-    if n_groups > MAX_CROSS_GROUPS:
-        raise ParameterError(
-            f"{n_groups} groups would make a {n_groups} × {n_groups} result; at most "
-            f"{MAX_CROSS_GROUPS} groups are supported. Group by fewer or coarser fields."
-        )
-    geod = _geod(a, f)
-    lay = _Layout(lon, lat, groups, n_groups, weights)
-    n = lon.size
-    every = np.array([n], dtype=np.int64)
-    tick = Ticker(progress, n * (n - 1) // 2)
+    geodesic = geod(a, f)
+    n, n_groups = lay.x.size, lay.n_groups
     cells = n_groups * n_groups
     total = _Compensated(cells)
     apart = _Compensated(cells)
+    every = np.array([n], dtype=np.int64)
     for i, j, _ in _pair_blocks(every, np.zeros(1, dtype=np.int64), [0]):
-        s = lay.distances(geod, i, j)
+        s = _distances(geodesic, lay, i, j)
         cell = lay.codes[i] * n_groups + lay.codes[j]  # sorted by group, so codes[i] <= codes[j]
-        ww = lay.w[i] * lay.w[j]
+        ww = lay.wpt[i] * lay.wpt[j]
         total.add(*_bin(cell, ww * s))
         apart.add(*_bin(cell, ww * (s > 0)))
         tick(i.size)
-    half = total.result().reshape(n_groups, n_groups)
-    half_apart = apart.result().reshape(n_groups, n_groups)
     diag = np.arange(n_groups)
-    sums = half + half.T
-    sums[diag, diag] = half[diag, diag]
-    positive = half_apart + half_apart.T
-    positive[diag, diag] = half_apart[diag, diag]
 
-    weight_sum = lay.weight_sum
-    pair_weight = np.outer(weight_sum, weight_sum)
-    pair_weight[diag, diag] = np.maximum(0.5 * np.bincount(lay.codes, lay.w * lay.other, n_groups), 0.0)
+    def symmetric(half):
+        half = half.reshape(n_groups, n_groups)
+        out = half + half.T
+        out[diag, diag] = half[diag, diag]
+        return out
+
     chain = min(n * (n - 1) // 2, BLOCK_PAIRS) + 16
-    lower, upper, bound = _interval(
-        sums, chain * UNIT_ROUNDOFF, DISTANCE_ALLOWANCE * (a / WGS84_A) * positive
+    return Raw(
+        symmetric(total.result()),
+        0,
+        relative=chain * UNIT_ROUNDOFF,
+        absolute=_allowance(a) * symmetric(apart.result()),
     )
-    missing = ~(pair_weight > 0)
-    for matrix in (sums, lower, upper, bound):
-        matrix[missing] = np.nan
-    return CrossPairSums(
-        n_points=lay.counts,
-        weight_sum=weight_sum,
-        pair_weight=pair_weight,
-        total=sums,
-        lower=lower,
-        upper=upper,
-        rel_bound=bound,
-        exact=~missing,
-        directions=np.zeros((n_groups, n_groups), dtype=np.int64),
-    )
+
+
+def exact_geodesic_against_raw(alon, alat, blon, blat, bw, a: float, f: float) -> Raw:
+    """Exact ``Σ_j w_j s(a_i, b_j)`` of every point a_i against the set b (longitudes, latitudes)."""
+    geodesic = geod(a, f)
+    n = blon.size
+    total = np.zeros(alon.size)
+    apart = np.zeros(alon.size)
+    rows = max(1, BLOCK_PAIRS // max(n, 1))
+    for start in range(0, alon.size, rows):
+        i = np.repeat(np.arange(start, min(start + rows, alon.size)), n)
+        j = np.tile(np.arange(n), i.size // n if n else 0)
+        s = np.asarray(geodesic.inv(alon[i], alat[i], blon[j], blat[j])[2])
+        total += np.bincount(i, bw[j] * s, alon.size)
+        apart += np.bincount(i, bw[j] * (s > 0), alon.size)
+    chain = min(n, BLOCK_PAIRS) + 16
+    return Raw(total, 0, relative=chain * UNIT_ROUNDOFF, absolute=_allowance(a) * apart)

@@ -1,20 +1,18 @@
-"""Sums of pair distances within groups, exact or by projection, with guaranteed intervals.
+"""Sums of pair distances within groups: exact, or projected onto equally spaced directions.
 
-The projection estimate rests on the Cauchy–Crofton formula: for a vector v in the plane,
-``|v| = 1/2 ∫_0^π |<v, u(θ)>| dθ``. With ``m`` equally spaced directions and ``x = π/(2m)``
-the sum ``F`` of projected pair sums satisfies ``F·sin x ≤ D ≤ F·tan x`` for the true total
-``D``, and the estimate ``2·tan(x/2)·F`` has relative error at most ``tan²(x/2)``. Along one
-direction the projected pair sum is exact after one sort. See ``docs/method.md``.
+The projection rests on the Cauchy–Crofton formula: for a vector v in the plane,
+``|v| = 1/2 ∫_0^π |<v, u(θ)>| dθ``. Along one direction the projected pair sum is exact after
+one sort, or, with the compiled kernel, from bins of the projected values (pairs in different
+bins exactly, pairs in one bin bounded by its width). These functions return
+:class:`~toolbox.kernels.Raw` records; ``toolbox.estimate`` turns them into intervals.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import functools
-import math
 import os
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
 
 import numpy as np
 
@@ -22,20 +20,9 @@ from ._common import (
     BLOCK_ELEMENTS,
     SMALL_EXACT,
     UNIT_ROUNDOFF,
-    GroupLayout,
-    Progress,
-    Ticker,
-    centring_slack,
-    check_groups,
-    check_method,
-    check_points,
-    crofton_interval,
-    directions_for_tolerance,
+    Raw,
     directions_unit_vectors,
     exact_rounding,
-    projection_directions,
-    projection_error,
-    split_methods,
     thread_limit,
 )
 
@@ -55,74 +42,7 @@ _TASK_POINTS = 1 << 24
 #: below this many point-directions the compiled kernel runs on one thread
 _SERIAL_POINTS = 1 << 20
 
-__all__ = ["GroupPairSums", "PairSum", "exact_pair_sum", "pair_distance_sum", "grouped_pair_sums"]
-
-
-@dataclass(frozen=True)
-class PairSum:
-    """Total of pair distances of one set of points, with its guaranteed interval."""
-
-    total: float
-    lower: float
-    upper: float
-    rel_bound: float
-    method: str
-    directions: int
-    pair_weight: float
-
-    @property
-    def mean(self) -> float:
-        """Weighted mean pair distance ``total / pair_weight`` (NaN without pairs)."""
-        return self.total / self.pair_weight if self.pair_weight > 0 else math.nan
-
-
-@dataclass(frozen=True)
-class GroupPairSums:
-    """Per-group results of :func:`grouped_pair_sums`; every array has one entry per group.
-
-    Groups with fewer than two points or zero pair weight have NaN totals and bounds,
-    ``exact`` False and 0 directions.
-    """
-
-    n_points: np.ndarray
-    weight_sum: np.ndarray
-    pair_weight: np.ndarray
-    total: np.ndarray
-    lower: np.ndarray
-    upper: np.ndarray
-    rel_bound: np.ndarray
-    exact: np.ndarray
-    directions: np.ndarray
-
-    @property
-    def mean(self) -> np.ndarray:
-        """Weighted mean pair distance per group."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.pair_weight > 0, self.total / self.pair_weight, np.nan)
-
-
-def exact_pair_sum(x, y, weights=None) -> float:
-    """Exact ``Σ_{i<j} w_i w_j |p_i − p_j|`` by brute force in bounded-memory blocks.
-
-    Parameters
-    ----------
-    x, y : array_like
-        Coordinates of the points.
-    weights : array_like, optional
-        Non-negative weights; all ones if omitted.
-
-    Returns
-    -------
-    float
-        The weighted sum over unordered pairs.
-
-    Examples
-    --------
-    >>> exact_pair_sum([0, 3, 0], [0, 0, 4])  # a 3-4-5 triangle
-    12.0
-    """
-    r = grouped_pair_sums(x, y, np.zeros(np.shape(x), dtype=np.int8), 1, weights, tolerance=0)
-    return float(np.nan_to_num(r.total[0]))
+__all__ = ["exact_pair_raw", "projected_pair_raw", "padded_distances"]
 
 
 def _exact_one(x, y, w) -> float:
@@ -146,7 +66,7 @@ def _exact_one(x, y, w) -> float:
     return total
 
 
-def _padded_distances(px, py) -> np.ndarray:
+def padded_distances(px, py) -> np.ndarray:
     """Distance matrices (groups, s, s) of padded rows of points."""
     dx = px[:, :, None] - px[:, None, :]
     dy = py[:, :, None] - py[:, None, :]
@@ -155,133 +75,47 @@ def _padded_distances(px, py) -> np.ndarray:
 
 def _exact_padded(px, py, w) -> np.ndarray:
     """Exact pair sums of many small groups laid out as padded rows (padding has weight 0)."""
-    return 0.5 * np.einsum("gi,gij,gj->g", w, _padded_distances(px, py), w)
+    return 0.5 * np.einsum("gi,gij,gj->g", w, padded_distances(px, py), w)
 
 
-def grouped_pair_sums(
-    x,
-    y,
-    groups,
-    n_groups: int | None = None,
-    weights=None,
-    *,
-    tolerance: float = 0.01,
-    method: str = "auto",
-    progress: Progress | None = None,
-    threads: int | None = None,
-) -> GroupPairSums:
-    """Total pair distance of every group, each with a guaranteed interval.
+def exact_pair_raw(lay, groups, tick) -> Raw:
+    """Exact pair sums of ``groups`` of a centred layout (one entry per group of ``groups``).
 
-    Parameters
-    ----------
-    x, y : array_like
-        Planar coordinates of the points.
-    groups : array_like of int
-        Group code of every point, in ``[0, n_groups)``.
-    n_groups : int, optional
-        Number of groups (default ``groups.max() + 1``); groups without points are reported.
-    weights : array_like, optional
-        Non-negative weight of every point; the weighted total is ``Σ_{i<j} w_i w_j d_ij``.
-    tolerance : float
-        Guaranteed relative error of each total, in [0, 0.5]. 0 means exact.
-    method : {"auto", "exact", "projection"}
-        ``auto`` picks, per group, exact sums when they are cheaper than the projection.
-    progress : callable, optional
-        Called as ``progress(done, total)`` in work units as groups are finished.
-    threads : int, optional
-        Threads for the projection estimate (default: every core).
-
-    Returns
-    -------
-    GroupPairSums
-        Arrays with one entry per group.
-
-    Examples
-    --------
-    >>> r = grouped_pair_sums([0, 1, 0, 0, 3], [0, 0, 0, 4, 0], [0, 0, 1, 1, 1])
-    >>> r.total.tolist(), r.exact.tolist()
-    ([1.0, 12.0], [True, True])
+    Many small groups at once in padded blocks, larger ones in blocks of rows.
     """
-    x, y, weights = check_points(x, y, weights)
-    groups, n_groups = check_groups(groups, x.size, n_groups)
-    m = check_method(method, tolerance)
-    if m and _compiled() is not None:
-        m = projection_directions(tolerance)
-    lay = GroupLayout.build(x, y, groups, n_groups, weights)
     counts = lay.counts
-    pair_weight = lay.pair_weight()
-
-    total = np.full(n_groups, np.nan)
-    lower = np.full(n_groups, np.nan)
-    upper = np.full(n_groups, np.nan)
-    rel_bound = np.full(n_groups, np.nan)
-    exact = np.zeros(n_groups, dtype=bool)
-    dirs = np.zeros(n_groups, dtype=np.int64)
-
-    live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
-    exact_groups, proj_groups = split_methods(counts, live, m, method, lay.w is not None)
-    tick = Ticker(progress, counts[exact_groups].sum() + m * counts[proj_groups].sum())
-    radius_sum = lay.radius_sum()
-
-    # exact sums: many small groups at once, larger ones in blocks
-    small = exact_groups[counts[exact_groups] <= SMALL_EXACT]
+    total = np.zeros(lay.n_groups)
+    small = groups[counts[groups] <= SMALL_EXACT]
     for chunk, index, valid in lay.chunks(small, lambda s: s * s):
         total[chunk] = _exact_padded(lay.x[index], lay.y[index], lay.padded_weights(index, valid))
         tick(counts[chunk].sum())
-    for g in exact_groups[counts[exact_groups] > SMALL_EXACT]:
+    for g in groups[counts[groups] > SMALL_EXACT]:
         sl = slice(lay.starts[g], lay.starts[g] + counts[g])
         total[g] = _exact_one(lay.x[sl], lay.y[sl], None if lay.w is None else lay.w[sl])
         tick(counts[g])
     # padded batches add all s² terms in one chain; row blocks chain about 3n additions
-    sizes = counts[exact_groups]
+    sizes = counts[groups]
     rounding = exact_rounding(np.where(sizes <= SMALL_EXACT, sizes * sizes, 3 * sizes))
-    g = exact_groups
-    shift = centring_slack(lay.weight_sum[g], radius_sum[g])
-    lower[g] = np.maximum(total[g] * (1 - rounding) - shift, 0.0)
-    upper[g] = total[g] * (1 + rounding) + shift
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rel_bound[g] = np.where(total[g] > 0, rounding + shift / total[g], np.where(shift > 0, np.inf, 0.0))
-    exact[exact_groups] = True
-
-    if proj_groups.size:
-        g = proj_groups
-        total[g], lower[g], upper[g], rel_bound[g] = _projection(lay, g, m, tolerance, tick, threads)
-        dirs[g] = m
-        # The rounding allowance is written for the worst case; should it still push a bound
-        # over the tolerance, those groups are summed again with a wider margin.
-        over = g[rel_bound[g] > tolerance]
-        if over.size:
-            m2 = directions_for_tolerance(tolerance * 0.9)
-            retry = Ticker(None, 0)
-            total[over], lower[over], upper[over], rel_bound[over] = _projection(
-                lay, over, m2, tolerance, retry, threads
-            )
-            dirs[over] = m2
-
-    return GroupPairSums(
-        n_points=counts,
-        weight_sum=lay.weight_sum,
-        pair_weight=pair_weight,
-        total=total,
-        lower=lower,
-        upper=upper,
-        rel_bound=rel_bound,
-        exact=exact,
-        directions=dirs,
-    )
+    # centring: Σ_{i<j} w_i w_j (r_i + r_j) ≤ W·A; twice that, as a margin
+    mass = 2 * lay.weight_sum[groups] * lay.radius_sum()[groups]
+    return Raw(total[groups], 0, relative=rounding, radius_mass=mass)
 
 
-def _projection(lay, groups, m, tolerance, tick, threads):
-    """Estimate, bounds and rel_bound of the projected sums of ``groups`` with m directions."""
+def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
+    """Summed projections of the pair sums of ``groups`` (centred layout) on ``m`` directions.
+
+    ``budget`` is the in-bin uncertainty the binned kernel may leave per direction, relative
+    to its exact part; heavier bins are resolved.
+    """
     cos_t, sin_t = directions_unit_vectors(m)
     radius_sum = lay.radius_sum()[groups]
     weight_sum = lay.weight_sum[groups]
-    # Buckets beat sorting except for tight tolerances on unweighted layers, where numpy's
+    # Bins beat sorting except for tight tolerances on unweighted layers, where numpy's
     # vectorised sort with nothing to gather is the faster exact route.
-    tight = _bucket_budget(tolerance, m) < 1e-7
+    tight = budget < 1e-7
     if _compiled() is not None and not (tight and lay.w is None):
         source = _spatially_ordered(lay) if m >= _LOCALITY_DIRECTIONS else lay
-        exact_part, uncertain, chain = _bucketed_sums(source, groups, cos_t, sin_t, tolerance, tick, threads)
+        exact_part, uncertain, chain = _bucketed_sums(source, groups, cos_t, sin_t, budget, tick, threads)
     else:
         exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
         workers = max(1, min(threads or _default_threads(), m))
@@ -301,8 +135,7 @@ def _projection(lay, groups, m, tolerance, tick, threads):
     # within (2·chain + 6)·u·W_g·Σ w_i r_i of the exact projected sum of the exact
     # coordinates (centring included).
     slack = m * (2 * chain[groups] + 6) * UNIT_ROUNDOFF * weight_sum * radius_sum
-    part, spread = exact_part[groups], uncertain[groups]
-    return crofton_interval(part + spread / 2, slack + spread / 2, m)
+    return Raw(exact_part[groups], m, absolute=slack, uncertain=uncertain[groups])
 
 
 #: from this many directions on, points are first put in a space-filling-curve order
@@ -347,18 +180,7 @@ def _default_threads() -> int:
     return os.cpu_count() or 1
 
 
-def _bucket_budget(tolerance, m):
-    """In-bucket uncertainty allowed per direction, relative to the exact part.
-
-    The directions leave ``tolerance − tan²(π/4m)`` unused (at least 1 % of the tolerance, see
-    projection_directions); an uncertainty U beside an exact part F moves the estimate by U/2,
-    so U/F up to twice that margin keeps rel_bound within the tolerance. Half of it is kept
-    back for the rounding allowances.
-    """
-    return 0.5 * 2 * (tolerance - projection_error(m)) / (1 + tolerance)
-
-
-def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
+def _bucketed_sums(lay, groups, cos_t, sin_t, budget, tick, threads):
     """Exact part and uncertainty of the projected sums of ``groups``, with the compiled kernel."""
     m = cos_t.size
     radius = lay.radius_max()
@@ -380,7 +202,7 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, tolerance, tick, threads):
                 cos_t,
                 sin_t,
                 radius,
-                _bucket_budget(tolerance, m),
+                budget,
             )
             exact_part[batch], uncertain[batch], chain[batch] = e, u, c
             tick(m * lay.counts[batch].sum())
@@ -417,47 +239,6 @@ def _projected_rows(cx, cy, cw, valid, n, cos_t, sin_t) -> np.ndarray:
     return out
 
 
-def pair_distance_sum(x, y, weights=None, *, tolerance: float = 0.01, method: str = "auto") -> PairSum:
-    """Total of all pair distances of one set of points, with a guaranteed interval.
-
-    Parameters
-    ----------
-    x, y : array_like
-        Planar coordinates.
-    weights : array_like, optional
-        Non-negative weights; the total is ``Σ_{i<j} w_i w_j d_ij``.
-    tolerance : float
-        Guaranteed relative error of ``total``; 0 means exact.
-    method : {"auto", "exact", "projection"}
-        How to compute it; ``auto`` takes the cheaper of the two.
-
-    Returns
-    -------
-    PairSum
-        ``total``, ``lower`` ≤ true total ≤ ``upper``, ``rel_bound``, ``method``,
-        ``directions`` (0 when exact) and ``pair_weight``.
-
-    Examples
-    --------
-    >>> r = pair_distance_sum([0, 1, 1, 0], [0, 0, 1, 1], tolerance=0)  # unit square corners
-    >>> round(r.total, 10), r.method
-    (6.8284271247, 'exact')
-    >>> r = pair_distance_sum([0, 1, 1, 0], [0, 0, 1, 1], method="projection")
-    >>> r.lower <= 4 + 2 * 2 ** 0.5 <= r.upper, r.directions
-    (True, 8)
-    """
-    x = np.asarray(x, dtype=np.float64)
-    r = grouped_pair_sums(
-        x, y, np.zeros(x.shape, dtype=np.int8), 1, weights, tolerance=tolerance, method=method
-    )
-    if np.isnan(r.total[0]):
-        return PairSum(0.0, 0.0, 0.0, 0.0, "exact", 0, float(r.pair_weight[0]))
-    return PairSum(
-        total=float(r.total[0]),
-        lower=float(r.lower[0]),
-        upper=float(r.upper[0]),
-        rel_bound=float(r.rel_bound[0]),
-        method="exact" if r.exact[0] else "projection",
-        directions=int(r.directions[0]),
-        pair_weight=float(r.pair_weight[0]),
-    )
+def has_compiled() -> bool:
+    """Whether the compiled binned kernel is available (numba installed)."""
+    return _compiled() is not None

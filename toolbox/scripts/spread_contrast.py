@@ -7,8 +7,9 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .. import geodesy, grouping, layers
+from .. import estimate, grouping, layers
 from ..errors import ParameterError
+from ..estimate.interval import forward_slack
 from ..kernels.energy import check_permutations, energy_test, holm_adjust
 
 _SAMPLE = "__sample__"
@@ -21,7 +22,7 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
     """
     fields = [*group_by, *([compare] if compare else []), *([weight] if weight else [])]
     first = layers.read_points(data, layer=layer, fields=fields, where=where, engine=engine)
-    setup = geodesy.distance_setup(first.crs, first.label, distance=distance, target=crs, script="spread-contrast")
+    setup = estimate.distance_setup(first.crs, first.label, distance=distance, target=crs, script="spread-contrast")
     parts = [(first, weight, None)]
     if to is not None:
         second = layers.read_points(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], engine=engine)
@@ -51,10 +52,10 @@ def _frame(setup):
         return lambda x, y: (x, y, {}, None)
 
     def local(lon, lat):
-        frame = geodesy.local_frame(lon, lat, setup.a, setup.f)
+        frame = estimate.local_frame(lon, lat, setup.a, setup.f)
         if not frame.usable:
             return lon, lat, {}, f"the group {frame.reason}: too wide for one local projection; pass --crs"
-        slack = 2 * geodesy.FORWARD_ALLOWANCE * setup.a / geodesy.WGS84_A
+        slack = float(forward_slack(setup.a, 1.0))  # per unit of pair weight
         return frame.x, frame.y, {"scale_bounds": (frame.k_min, frame.k_max), "pair_slack": slack}, None
 
     return local
