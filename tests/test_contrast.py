@@ -143,6 +143,9 @@ def test_disco_decomposition_on_a_hand_checked_example():
     assert r.between_mean == pytest.approx(38 / 12)
     projected = energy_test(x, np.zeros(6), labels, tolerance=0.01, method="projection", permutations=99, seed=0)
     assert projected.energy_lo <= 3.0 <= projected.energy_hi
+    # k samples by projection: the same relabellings as exact mode, so the same p-value
+    fine = energy_test(x, np.zeros(6), labels, tolerance=1e-6, method="projection", permutations=99, seed=0)
+    assert fine.p_value == r.p_value and fine.f_ratio == pytest.approx(0.9, rel=1e-5)
 
 
 def test_null_p_values_are_roughly_uniform():
