@@ -49,7 +49,14 @@ def districts(groups: int) -> dict[str, np.ndarray]:
     towns = centre[:, None, :] + rng.uniform(-1, 1, (groups, SETTLEMENTS, 2)) * radius[:, None, None]
     spread = np.exp(rng.uniform(np.log(150.0), np.log(4_000.0), (groups, SETTLEMENTS)))
     town_share = rng.dirichlet(np.ones(SETTLEMENTS), groups)
-    return {"share": share, "centre": centre, "radius": radius, "towns": towns, "spread": spread, "town_share": town_share}
+    return {
+        "share": share,
+        "centre": centre,
+        "radius": radius,
+        "towns": towns,
+        "spread": spread,
+        "town_share": town_share,
+    }
 
 
 def chunk(part: int, rows: int, layout: dict[str, np.ndarray]) -> pa.Table:
@@ -62,9 +69,10 @@ def chunk(part: int, rows: int, layout: dict[str, np.ndarray]) -> pa.Table:
     town = np.minimum(town, SETTLEMENTS - 1)
     xy = layout["towns"][zone, town] + rng.standard_normal((rows, 2)) * layout["spread"][zone, town][:, None]
     scatter = rng.random(rows) < 0.01  # 1 % spread thinly over the district
-    box = layout["centre"][zone[scatter]] + rng.uniform(-1, 1, (int(scatter.sum()), 2)) * layout["radius"][
-        zone[scatter], None
-    ]
+    box = (
+        layout["centre"][zone[scatter]]
+        + rng.uniform(-1, 1, (int(scatter.sum()), 2)) * layout["radius"][zone[scatter], None]
+    )
     xy[scatter] = box
     residents = rng.integers(1, 7, rows).astype(np.float64)
     return pa.table({"zone": zone, "residents": residents, "geometry": wkb_points(xy[:, 0], xy[:, 1])})
@@ -76,7 +84,9 @@ def wkb_points(x: np.ndarray, y: np.ndarray) -> pa.Array:
     record = np.zeros(n, dtype=[("order", "u1"), ("kind", "<u4"), ("x", "<f8"), ("y", "<f8")])
     record["order"], record["kind"], record["x"], record["y"] = 1, 1, x, y
     offsets = np.arange(0, 21 * (n + 1), 21, dtype=np.int32)
-    return pa.Array.from_buffers(pa.binary(), n, [None, pa.py_buffer(offsets), pa.py_buffer(record.tobytes())])
+    return pa.Array.from_buffers(
+        pa.binary(), n, [None, pa.py_buffer(offsets), pa.py_buffer(record.tobytes())]
+    )
 
 
 def geo_metadata(bbox=None) -> bytes:
@@ -90,7 +100,9 @@ def geo_metadata(bbox=None) -> bytes:
     }
     if bbox is not None:
         column["bbox"] = [float(v) for v in bbox]
-    return json.dumps({"version": "1.1.0", "primary_column": "geometry", "columns": {"geometry": column}}).encode()
+    return json.dumps(
+        {"version": "1.1.0", "primary_column": "geometry", "columns": {"geometry": column}}
+    ).encode()
 
 
 def make_dataset(points: int, groups: int, files: int, *, quiet: bool = False) -> Path:

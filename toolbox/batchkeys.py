@@ -140,7 +140,9 @@ def merge_key_tables(tables: Sequence[KeyTable]) -> KeyTable:
     frames = [pd.concat([_as_objects(t.keys), t.values], axis=1) for t in tables]
     stacked = pd.concat(frames, ignore_index=True)
     grouped = stacked.groupby(fields, dropna=False, sort=True)
-    merged = grouped.agg({n: MERGE_RULES[r] for n, r in first.rules.items()}) if first.rules else grouped.size()
+    merged = (
+        grouped.agg({n: MERGE_RULES[r] for n, r in first.rules.items()}) if first.rules else grouped.size()
+    )
     merged = merged.reset_index() if first.rules else merged.reset_index()[fields]
     keys = _typed_keys(merged[fields], [t.keys for t in tables])
     return KeyTable(first.fields, keys, merged[list(first.rules)].reset_index(drop=True), first.rules)

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 import pyogrio
 
-from ..errors import InputError, ParameterError
+from ..errors import ParameterError
 from .read import (
     PointLayer,
     _check_fields,
@@ -96,7 +96,9 @@ class PointStream:
             first += len(points.attributes)
 
 
-def open_stream(data, *, layer: str | None = None, where: str | None = None, engine: str = "pyogrio") -> PointStream:
+def open_stream(
+    data, *, layer: str | None = None, where: str | None = None, engine: str = "pyogrio"
+) -> PointStream:
     """Open a layer for reading in batches.
 
     Parameters

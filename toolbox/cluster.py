@@ -1,0 +1,229 @@
+"""Passes over a layer in parts: one process (batch after batch) or a Dask cluster (partitions).
+
+A computation over a layer too large for memory is a few *passes*; each pass maps every part of
+the layer to a small mergeable summary (group keys and counts, then the estimator's binned
+state) and merges those. :class:`Parts` is the layer cut into parts that can each be read on
+their own: the files of a GeoParquet dataset, the partitions of a dask-geopandas frame, or a
+single stream read in batches. :func:`reduce_parts` runs one pass, either in this process
+(batches one after the other, so memory holds one batch and one summary) or on a ``distributed``
+cluster, where each partition is read and summarised on a worker and the summaries are merged
+in a tree on the workers: only the final summary travels to the client, never coordinates.
+
+Dask, distributed and dask-geopandas are optional (``pip install pairspread[dask]``); they are
+imported only when a cluster or a Dask frame is used.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from .errors import InputError, PairspreadError, ParameterError
+from .layers import PointLayer
+
+__all__ = [
+    "Parts",
+    "reduce_parts",
+    "connected",
+    "stream_parts",
+    "is_dask_frame",
+    "dask_parts",
+    "FAN_IN",
+    "CONNECT_TIMEOUT",
+]
+
+#: summaries merged per task of the reduction tree
+FAN_IN = 8
+#: seconds to wait for a scheduler to answer
+CONNECT_TIMEOUT = 10
+
+
+@dataclass(frozen=True)
+class Parts:
+    """A layer cut into parts; ``read(part, fields)`` yields the :class:`PointLayer` batches of one.
+
+    ``parts`` are small descriptions (file names, delayed partitions, or one stream), cheap to
+    send to a worker; ``read`` must be a module-level function so that it pickles.
+    """
+
+    parts: Sequence[Any]
+    read: Callable[..., Iterator[PointLayer]]
+    label: str
+    crs: object
+    fields: list[str]
+    rows: int | None = None
+    distributed: bool = False
+
+
+def _summarise_part(read, part, fields, summarise, merge, index):
+    """One part's summary: each batch summarised, then merged (memory: one batch at a time)."""
+    result = None
+    try:
+        for batch in read(part, fields):
+            mine = summarise(batch)
+            result = mine if result is None else merge([result, mine])
+    except PairspreadError as exc:
+        # name the part, so a bad partition among hundreds can be found
+        raise type(exc)(f"{_part_name(part, index)}: {exc}") from None
+    return result
+
+
+def _part_name(part, index) -> str:
+    if isinstance(part, str):
+        return f"Partition {part!r}"
+    return f"Partition {index}"
+
+
+def _merge_some(merge, *summaries):
+    return merge([s for s in summaries if s is not None]) if any(s is not None for s in summaries) else None
+
+
+def reduce_parts(
+    parts: Parts,
+    fields: Sequence[str],
+    summarise: Callable[[PointLayer], Any],
+    merge: Callable[[list], Any],
+    *,
+    client=None,
+    progress: Callable[[int, int], None] | None = None,
+):
+    """One pass: ``merge`` of ``summarise(batch)`` over every batch of every part.
+
+    Parameters
+    ----------
+    parts : Parts
+        The layer in parts.
+    fields : sequence of str
+        Attribute fields each batch needs.
+    summarise : callable
+        Batch to summary; must pickle (a module-level function or a ``functools.partial`` of
+        one) when a client is given.
+    merge : callable
+        List of summaries to one; associative and commutative.
+    client : distributed.Client, optional
+        Run on this cluster: parts are read and summarised on the workers and merged in a tree
+        of ``FAN_IN`` summaries per task; only the final summary comes back.
+    progress : callable, optional
+        ``progress(done, total)`` in parts, in this process only.
+
+    Returns
+    -------
+    The merged summary, or None when the layer has no batch.
+
+    Examples
+    --------
+    >>> import geopandas, shapely
+    >>> from toolbox.layers.stream import open_stream
+    >>> frame = geopandas.GeoDataFrame(geometry=shapely.points(range(5), [0] * 5))
+    >>> reduce_parts(stream_parts(open_stream(frame), batch_rows=2), [], lambda b: b.x.size, sum)
+    5
+    """
+    fields = list(fields)
+    if client is None:
+        result = None
+        for index, part in enumerate(parts.parts):
+            mine = _summarise_part(parts.read, part, fields, summarise, merge, index)
+            result = _merge_some(merge, result, mine)
+            if progress is not None:
+                progress(index + 1, len(parts.parts))
+        return result
+    import dask
+
+    level = [
+        dask.delayed(_summarise_part, pure=True)(parts.read, part, fields, summarise, merge, index)
+        for index, part in enumerate(parts.parts)
+    ]
+    while len(level) > 1:
+        level = [
+            dask.delayed(_merge_some, pure=True)(merge, *level[i : i + FAN_IN])
+            for i in range(0, len(level), FAN_IN)
+        ]
+    if not level:
+        return None
+    return client.compute(level[0]).result()
+
+
+# --------------------------------------------------------------------------------------------
+# where the parts come from
+
+
+def _read_stream(part, fields):
+    stream, batch_rows = part
+    for batch in stream.batches(fields, batch_rows):
+        yield batch.points
+
+
+def stream_parts(stream, batch_rows: int) -> Parts:
+    """A :class:`~toolbox.layers.stream.PointStream` as one part read in batches (no cluster)."""
+    return Parts([(stream, batch_rows)], _read_stream, stream.label, stream.crs, stream.fields, stream.rows)
+
+
+def _read_frame_partition(part, fields):
+    from .layers import points_of
+
+    frame, label = part
+    frame = frame.compute() if hasattr(frame, "compute") else frame
+    yield points_of(frame, fields, label)
+
+
+def is_dask_frame(data) -> bool:
+    """Whether ``data`` is a dask-geopandas GeoDataFrame (without importing Dask otherwise)."""
+    module = sys.modules.get("dask_geopandas")
+    return module is not None and isinstance(data, module.GeoDataFrame)
+
+
+def dask_parts(frame) -> Parts:
+    """The partitions of a dask-geopandas GeoDataFrame as parts (each read where it lives)."""
+    label = "the Dask GeoDataFrame"
+    geometry = frame.geometry.name
+    fields = [str(c) for c in frame.columns if c != geometry]
+    delayed = frame.to_delayed()
+    parts = [(d, f"partition {i} of {label}") for i, d in enumerate(delayed)]
+    return Parts(parts, _read_frame_partition, label, frame.crs, fields, None, distributed=True)
+
+
+# --------------------------------------------------------------------------------------------
+# the cluster
+
+
+@contextlib.contextmanager
+def connected(address) -> Iterator[Any]:
+    """A ``distributed.Client`` for ``address`` while the block runs (None for None).
+
+    ``address`` is a scheduler address (``tcp://host:8786``), a cluster object (a
+    ``LocalCluster``) or a Client, which is used as it is and left open. Raises
+    :class:`~toolbox.errors.InputError` in one line when nothing answers.
+    """
+    if address is None:
+        yield None
+        return
+    if hasattr(address, "compute") and hasattr(address, "submit"):  # a Client: the caller's
+        yield address
+        return
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise ParameterError(
+            "A Dask scheduler needs Dask's distributed package; install it with `pip install pairspread[dask]`."
+        ) from exc
+    if hasattr(address, "scheduler_address"):  # a LocalCluster or another cluster object
+        address = address.scheduler_address
+    text = str(address).strip()
+    if not text:
+        raise ParameterError("--dask-scheduler needs an address such as tcp://host:8786.")
+    try:
+        client = Client(text, timeout=CONNECT_TIMEOUT, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(
+            f"No Dask scheduler answered at {text!r} within {CONNECT_TIMEOUT} s ({reason}); "
+            "check --dask-scheduler (e.g. tcp://host:8786) or start one with `dask scheduler` "
+            "and workers with `dask worker ADDRESS`."
+        ) from None
+    try:
+        yield client
+    finally:
+        client.close()
