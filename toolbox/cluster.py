@@ -16,21 +16,16 @@ imported only when a cluster or a Dask frame is used.
 from __future__ import annotations
 
 import contextlib
-import sys
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass
 from typing import Any
 
-from .errors import InputError, PairspreadError, ParameterError
+from .errors import InputError, ParameterError
 from .layers import PointLayer
+from .layers.stream import LayerParts, check_batch_rows
 
 __all__ = [
-    "Parts",
     "reduce_parts",
     "connected",
-    "stream_parts",
-    "is_dask_frame",
-    "dask_parts",
     "FAN_IN",
     "CONNECT_TIMEOUT",
 ]
@@ -41,40 +36,13 @@ FAN_IN = 8
 CONNECT_TIMEOUT = 10
 
 
-@dataclass(frozen=True)
-class Parts:
-    """A layer cut into parts; ``read(part, fields)`` yields the :class:`PointLayer` batches of one.
-
-    ``parts`` are small descriptions (file names, delayed partitions, or one stream), cheap to
-    send to a worker; ``read`` must be a module-level function so that it pickles.
-    """
-
-    parts: Sequence[Any]
-    read: Callable[..., Iterator[PointLayer]]
-    label: str
-    crs: object
-    fields: list[str]
-    rows: int | None = None
-    distributed: bool = False
-
-
-def _summarise_part(read, part, fields, summarise, merge, index):
+def _summarise_part(read, part, fields, batch_rows, summarise, merge, index):
     """One part's summary: each batch summarised, then merged (memory: one batch at a time)."""
     result = None
-    try:
-        for batch in read(part, fields):
-            mine = summarise(batch)
-            result = mine if result is None else merge([result, mine])
-    except PairspreadError as exc:
-        # name the part, so a bad partition among hundreds can be found
-        raise type(exc)(f"{_part_name(part, index)}: {exc}") from None
+    for batch in read(part, fields, batch_rows):  # messages name the part (its file, its number)
+        mine = summarise(batch)
+        result = mine if result is None else merge([result, mine])
     return result
-
-
-def _part_name(part, index) -> str:
-    if isinstance(part, str):
-        return f"Partition {part!r}"
-    return f"Partition {index}"
 
 
 def _merge_some(merge, *summaries):
@@ -82,8 +50,9 @@ def _merge_some(merge, *summaries):
 
 
 def reduce_parts(
-    parts: Parts,
+    parts: LayerParts,
     fields: Sequence[str],
+    batch_rows: int,
     summarise: Callable[[PointLayer], Any],
     merge: Callable[[list], Any],
     *,
@@ -94,10 +63,12 @@ def reduce_parts(
 
     Parameters
     ----------
-    parts : Parts
-        The layer in parts.
+    parts : LayerParts
+        The layer in parts (:func:`toolbox.layers.stream.layer_parts`).
     fields : sequence of str
         Attribute fields each batch needs.
+    batch_rows : int
+        Most features per batch.
     summarise : callable
         Batch to summary; must pickle (a module-level function or a ``functools.partial`` of
         one) when a client is given.
@@ -116,16 +87,22 @@ def reduce_parts(
     Examples
     --------
     >>> import geopandas, shapely
-    >>> from toolbox.layers.stream import open_stream
+    >>> from toolbox.layers.stream import layer_parts
     >>> frame = geopandas.GeoDataFrame(geometry=shapely.points(range(5), [0] * 5))
-    >>> reduce_parts(stream_parts(open_stream(frame), batch_rows=2), [], lambda b: b.x.size, sum)
+    >>> reduce_parts(layer_parts(frame), [], 2, lambda batch: batch.x.size, sum)
     5
     """
-    fields = list(fields)
+    fields = parts.check_fields(fields)
+    batch_rows = check_batch_rows(batch_rows)
+    if client is not None and not parts.on_workers:
+        raise ParameterError(
+            f"{parts.label} can only be read by this process, not by Dask workers; give a "
+            "GeoParquet dataset (a file, folder or glob) or a dask-geopandas GeoDataFrame."
+        )
     if client is None:
         result = None
         for index, part in enumerate(parts.parts):
-            mine = _summarise_part(parts.read, part, fields, summarise, merge, index)
+            mine = _summarise_part(parts.reader, part, fields, batch_rows, summarise, merge, index)
             result = _merge_some(merge, result, mine)
             if progress is not None:
                 progress(index + 1, len(parts.parts))
@@ -133,7 +110,9 @@ def reduce_parts(
     import dask
 
     level = [
-        dask.delayed(_summarise_part, pure=True)(parts.read, part, fields, summarise, merge, index)
+        dask.delayed(_summarise_part, pure=True)(
+            parts.reader, part, fields, batch_rows, summarise, merge, index
+        )
         for index, part in enumerate(parts.parts)
     ]
     while len(level) > 1:
@@ -144,45 +123,6 @@ def reduce_parts(
     if not level:
         return None
     return client.compute(level[0]).result()
-
-
-# --------------------------------------------------------------------------------------------
-# where the parts come from
-
-
-def _read_stream(part, fields):
-    stream, batch_rows = part
-    for batch in stream.batches(fields, batch_rows):
-        yield batch.points
-
-
-def stream_parts(stream, batch_rows: int) -> Parts:
-    """A :class:`~toolbox.layers.stream.PointStream` as one part read in batches (no cluster)."""
-    return Parts([(stream, batch_rows)], _read_stream, stream.label, stream.crs, stream.fields, stream.rows)
-
-
-def _read_frame_partition(part, fields):
-    from .layers import points_of
-
-    frame, label = part
-    frame = frame.compute() if hasattr(frame, "compute") else frame
-    yield points_of(frame, fields, label)
-
-
-def is_dask_frame(data) -> bool:
-    """Whether ``data`` is a dask-geopandas GeoDataFrame (without importing Dask otherwise)."""
-    module = sys.modules.get("dask_geopandas")
-    return module is not None and isinstance(data, module.GeoDataFrame)
-
-
-def dask_parts(frame) -> Parts:
-    """The partitions of a dask-geopandas GeoDataFrame as parts (each read where it lives)."""
-    label = "the Dask GeoDataFrame"
-    geometry = frame.geometry.name
-    fields = [str(c) for c in frame.columns if c != geometry]
-    delayed = frame.to_delayed()
-    parts = [(d, f"partition {i} of {label}") for i, d in enumerate(delayed)]
-    return Parts(parts, _read_frame_partition, label, frame.crs, fields, None, distributed=True)
 
 
 # --------------------------------------------------------------------------------------------

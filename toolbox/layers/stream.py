@@ -1,24 +1,28 @@
-"""Reading a layer batch by batch: point coordinates and the needed fields, never the whole layer.
+"""Reading a layer in parts and batches: point coordinates and the needed fields, never the whole layer.
 
-A :class:`PointStream` is a layer that can be read from the start as often as a computation
-needs passes over it (a plan pass, then the sums). Each pass yields :class:`~.read.PointLayer`
-batches of at most ``batch_rows`` features, so memory is bounded by the batch, not the layer:
+:class:`LayerParts` is a layer cut into *parts* that can each be read on their own, batch by
+batch, as often as a computation needs passes over it:
 
-- OGR formats stream through pyogrio's Arrow interface (``pyogrio.raw.open_arrow`` with a
-  ``batch_size``): coordinates of 2-D points come straight from the WKB buffers, without a
-  shapely object per feature;
-- a GeoDataFrame already in memory is sliced into batches (for tests, and so that the same
-  driver serves it).
+- an OGR layer is one part, streamed through pyogrio's Arrow interface
+  (``pyogrio.raw.open_arrow`` with a ``batch_size``): coordinates of 2-D points come straight
+  from the WKB buffers, without a shapely object per feature;
+- a GeoParquet dataset (a file, a folder or a glob) has one part per file, read in batches of
+  row groups through pyarrow (:mod:`toolbox.layers.parquet`), so that Dask workers can each
+  read their own files;
+- a dask-geopandas GeoDataFrame has one part per partition, computed where it is read;
+- a GeoDataFrame in memory is one part, sliced into batches.
 
-Feature numbers in ``PointLayer.feature`` count from the start of their batch; ``first_row``
-of :class:`Batch` places a batch in the layer.
+A part is a small picklable description (a path, a delayed partition) and the reading function
+is a module-level function, so parts can be sent to Dask workers. Each batch is a
+:class:`~.read.PointLayer`; its ``feature`` numbers count from the start of the batch.
 """
 
 from __future__ import annotations
 
-import os
+import sys
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pyogrio
@@ -35,133 +39,122 @@ from .read import (
     points_of,
 )
 
-__all__ = ["Batch", "PointStream", "open_stream", "DEFAULT_BATCH_ROWS"]
+__all__ = ["LayerParts", "layer_parts", "is_dask_frame", "DEFAULT_BATCH_ROWS"]
 
-#: features per batch when none is asked for: about 30 MB of coordinates and codes
+#: features per batch when none is asked for: about 40 MB of coordinates, codes and weights
 DEFAULT_BATCH_ROWS = 1 << 20
 
 
 @dataclass(frozen=True)
-class Batch:
-    """One batch of a stream: its points and where its first feature sits in the layer."""
-
-    points: PointLayer
-    first_row: int
-
-    @property
-    def rows(self) -> int:
-        """Number of features in the batch."""
-        return len(self.points.attributes)
-
-
-@dataclass(frozen=True)
-class PointStream:
-    """A layer read in batches; every call of :meth:`batches` is a new pass from the start.
+class LayerParts:
+    """A layer as parts read batch by batch; every call of :meth:`batches` is a new pass.
 
     Attributes
     ----------
+    parts : list
+        Picklable descriptions of the parts (a path and layer name, a file, a partition).
+    reader : callable
+        ``reader(part, fields, batch_rows)`` yields the :class:`PointLayer` batches of a part.
     label : str
         How messages name the layer.
     crs : pyproj.CRS or None
-        The layer's CRS.
+        The layer's CRS (every part's, checked when the layer is opened).
     fields : list of str
         Its attribute fields.
     rows : int or None
-        Number of features when the source knows it cheaply (before any ``where`` filter).
+        Number of features when known cheaply (before any filter).
+    on_workers : bool
+        Whether the parts can be read on Dask workers (files, partitions) rather than only here.
     """
 
+    parts: list
+    reader: Callable[..., Iterator[PointLayer]]
     label: str
     crs: object
     fields: list[str]
-    rows: int | None
-    _read: Callable[[list[str], int], Iterator[PointLayer]]
+    rows: int | None = None
+    on_workers: bool = False
 
-    def batches(self, fields: Sequence[str] = (), batch_rows: int = DEFAULT_BATCH_ROWS) -> Iterator[Batch]:
-        """Batches of at most ``batch_rows`` features with the named fields (checked first).
+    def check_fields(self, fields: Sequence[str]) -> list[str]:
+        """The fields, without repeats, each checked to exist."""
+        fields = list(dict.fromkeys(fields))
+        _check_fields(fields, self.fields, self.label)
+        return fields
+
+    def batches(
+        self, fields: Sequence[str] = (), batch_rows: int = DEFAULT_BATCH_ROWS
+    ) -> Iterator[PointLayer]:
+        """Every batch of every part, in order, with the named fields.
 
         Examples
         --------
         >>> import geopandas, shapely
         >>> frame = geopandas.GeoDataFrame({"zone": list("aab")}, geometry=shapely.points([0, 1, 2], [0, 0, 0]))
-        >>> [b.rows for b in open_stream(frame).batches(["zone"], batch_rows=2)]
-        [2, 1]
+        >>> [b.x.tolist() for b in layer_parts(frame).batches(["zone"], batch_rows=2)]
+        [[0.0, 1.0], [2.0]]
         """
-        if isinstance(batch_rows, bool) or not isinstance(batch_rows, (int, np.integer)) or batch_rows < 1:
-            raise ParameterError(f"batch_rows must be a positive integer. Got {batch_rows!r} instead.")
-        fields = list(dict.fromkeys(fields))
-        _check_fields(fields, self.fields, self.label)
-        first = 0
-        for points in self._read(fields, int(batch_rows)):
-            yield Batch(points, first)
-            first += len(points.attributes)
+        check_batch_rows(batch_rows)
+        fields = self.check_fields(fields)
+        for part in self.parts:
+            yield from self.reader(part, fields, int(batch_rows))
 
 
-def open_stream(
+def check_batch_rows(batch_rows) -> int:
+    """``batch_rows`` as a positive int, or a ParameterError naming it."""
+    if isinstance(batch_rows, bool) or not isinstance(batch_rows, (int, np.integer)) or batch_rows < 1:
+        raise ParameterError(f"batch_rows must be a positive integer. Got {batch_rows!r} instead.")
+    return int(batch_rows)
+
+
+def layer_parts(
     data, *, layer: str | None = None, where: str | None = None, engine: str = "pyogrio"
-) -> PointStream:
-    """Open a layer for reading in batches.
+) -> LayerParts:
+    """Open a layer for reading in parts and batches (checks the path, layer and CRS first).
 
     Parameters
     ----------
-    data : str, os.PathLike or geopandas.GeoDataFrame
-        Any vector dataset OGR reads, or a GeoDataFrame in memory.
+    data : str, os.PathLike, geopandas.GeoDataFrame or dask_geopandas.GeoDataFrame
+        Any vector dataset OGR reads; GeoParquet (a file, a folder or a glob); a frame.
     layer : str, optional
-        Layer name; required when the dataset holds several.
+        Layer name; required when an OGR dataset holds several.
     where : str, optional
-        OGR SQL filter applied by the reader.
+        Attribute filter applied by the reader (OGR SQL for OGR formats).
     engine : {"pyogrio"}
         Streaming reads go through pyogrio's Arrow interface; fiona has none.
 
     Returns
     -------
-    PointStream
+    LayerParts
 
     Examples
     --------
     >>> import geopandas, shapely
     >>> frame = geopandas.GeoDataFrame({"w": [1.0, 2.0]}, geometry=shapely.points([0, 3], [0, 4]))
-    >>> stream = open_stream(frame)
-    >>> stream.rows, [b.points.x.tolist() for b in stream.batches(["w"], batch_rows=1)]
-    (2, [[0.0], [3.0]])
+    >>> parts = layer_parts(frame)
+    >>> parts.rows, [b.attributes["w"].tolist() for b in parts.batches(["w"], batch_rows=1)]
+    (2, [[1.0], [2.0]])
     """
+    if is_dask_frame(data):
+        if where:
+            raise ParameterError("A where filter applies to files only; filter the Dask GeoDataFrame first.")
+        return _dask_parts(data)
     if _is_frame(data):
         if where:
             raise ParameterError("A where filter applies to files only; filter the GeoDataFrame first.")
-        return _frame_stream(data)
+        label = "the GeoDataFrame"
+        fields = [str(c) for c in data.columns if c != data.geometry.name]
+        return LayerParts([(data, label)], _read_frame, label, data.crs, fields, len(data))
     if engine == "fiona":
         raise ParameterError(
             "Reading in batches goes through pyogrio's Arrow stream, which the fiona engine lacks; "
-            "leave out --engine fiona (or --batch-rows, to read the whole layer with fiona)."
+            "leave out --engine fiona, or leave out --batch-rows to read the whole layer with fiona."
         )
     path, name, label, available = _open(data, layer, engine, where)
     info = pyogrio.read_info(path, layer=name)
     rows = int(info["features"]) if info.get("features", -1) >= 0 else None
-
-    def read(fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
-        seen = 0
-        try:
-            # a filter may name fields that are not read; some drivers then drop every row
-            source = pyogrio.raw.open_arrow(
-                path,
-                layer=name,
-                columns=None if where else fields,
-                where=where,
-                batch_size=batch_rows,
-                use_pyarrow=True,
-            )
-            with source as (meta, reader):
-                geom = meta["geometry_name"] or "wkb_geometry"
-                for batch in reader:
-                    if batch.num_rows == 0:
-                        continue
-                    seen += batch.num_rows
-                    attributes = batch.select(fields).to_pandas()
-                    yield _points_from_wkb(attributes, batch.column(geom), meta["crs"], label)
-        except (pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError) as exc:
-            raise _reading_failed(exc, label, where, engine) from exc
-        _warn_if_nothing_matched(seen, where, label)
-
-    return PointStream(label, _crs_of(info.get("crs")), available, rows, read)
+    return LayerParts(
+        [(path, name, where, label)], _read_ogr, label, _crs_of(info.get("crs")), available, rows
+    )
 
 
 def _crs_of(text):
@@ -172,17 +165,61 @@ def _crs_of(text):
     return pyproj.CRS.from_user_input(text)
 
 
-def _frame_stream(frame) -> PointStream:
-    label = "the GeoDataFrame"
-    available = [str(c) for c in frame.columns if c != frame.geometry.name]
+def _read_ogr(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
+    path, name, where, label = part
+    seen = 0
+    try:
+        # a filter may name fields that are not read; some drivers then drop every row
+        source = pyogrio.raw.open_arrow(
+            path,
+            layer=name,
+            columns=None if where else fields,
+            where=where,
+            batch_size=batch_rows,
+            use_pyarrow=True,
+        )
+        with source as (meta, reader):
+            geom = meta["geometry_name"] or "wkb_geometry"
+            for batch in reader:
+                if batch.num_rows == 0:
+                    continue
+                seen += batch.num_rows
+                attributes = batch.select(fields).to_pandas()
+                yield _points_from_wkb(attributes, batch.column(geom), meta["crs"], label)
+    except (pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError) as exc:
+        raise _reading_failed(exc, label, where, "pyogrio") from exc
+    _warn_if_nothing_matched(seen, where, label)
 
-    def read(fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
-        for start in range(0, len(frame), batch_rows):
-            yield points_of(frame.iloc[start : start + batch_rows], fields, label)
 
-    return PointStream(label, frame.crs, available, len(frame), read)
+def _read_frame(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
+    frame, label = part
+    for start in range(0, len(frame), batch_rows):
+        yield points_of(frame.iloc[start : start + batch_rows], fields, label)
 
 
-def is_stream_source(data) -> bool:
-    """Whether ``data`` is something :func:`open_stream` can read (a path or a GeoDataFrame)."""
-    return _is_frame(data) or isinstance(data, (str, os.PathLike))
+# --------------------------------------------------------------------------------------------
+# Dask frames
+
+
+def is_dask_frame(data: Any) -> bool:
+    """Whether ``data`` is a dask-geopandas GeoDataFrame (without importing Dask otherwise)."""
+    module = sys.modules.get("dask_geopandas")
+    return module is not None and isinstance(data, module.GeoDataFrame)
+
+
+def _dask_parts(frame) -> LayerParts:
+    label = "the Dask GeoDataFrame"
+    geometry = frame.geometry.name
+    fields = [str(c) for c in frame.columns if c != geometry]
+    parts = [(partition, f"partition {i} of {label}") for i, partition in enumerate(frame.to_delayed())]
+    return LayerParts(parts, _read_dask_partition, label, frame.crs, fields, None, on_workers=True)
+
+
+def _read_dask_partition(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
+    frame, label = part
+    if hasattr(frame, "compute"):  # read here, not on a worker (a worker gets the partition itself)
+        frame = frame.compute()
+    if frame.crs is not None and not hasattr(frame.crs, "to_wkt"):
+        frame = frame.set_crs(frame.crs, allow_override=True)
+    for start in range(0, len(frame), batch_rows):
+        yield points_of(frame.iloc[start : start + batch_rows], fields, label)
