@@ -19,6 +19,7 @@ is a module-level function, so parts can be sent to Dask workers. Each batch is 
 
 from __future__ import annotations
 
+import os
 import sys
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
@@ -144,6 +145,10 @@ def layer_parts(
         label = "the GeoDataFrame"
         fields = [str(c) for c in data.columns if c != data.geometry.name]
         return LayerParts([(data, label)], _read_frame, label, data.crs, fields, len(data))
+    from . import parquet
+
+    if isinstance(data, parquet.ArrowLayer) or parquet.is_parquet(data):
+        return _parquet_parts(data, layer, where)
     if engine == "fiona":
         raise ParameterError(
             "Reading in batches goes through pyogrio's Arrow stream, which the fiona engine lacks; "
@@ -195,6 +200,51 @@ def _read_frame(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer
     frame, label = part
     for start in range(0, len(frame), batch_rows):
         yield points_of(frame.iloc[start : start + batch_rows], fields, label)
+
+
+# --------------------------------------------------------------------------------------------
+# GeoParquet: one part per file
+
+
+def _parquet_parts(data, layer, where) -> LayerParts:
+    import pyarrow.dataset as pads
+
+    from . import parquet
+
+    # every file's schema, geometry column and CRS are checked to agree here, from the footers
+    whole = data if isinstance(data, parquet.ArrowLayer) else parquet.open_parquet(data, layer)
+    if where:  # a mistake in the filter shows now, not on a worker
+        parquet.parse_where(where, whole.dataset.schema.names)
+    fragments = list(whole.dataset.get_fragments())
+    if not all(isinstance(f, pads.FileFragment) for f in fragments):  # a table in memory
+        return LayerParts([(whole, where)], _read_arrow_layer, whole.label, whole.crs, whole.fields)
+    base = os.fspath(data) if not isinstance(data, parquet.ArrowLayer) and os.path.isdir(data) else None
+    parts = [(f.path, base, where, whole.geometry, whole.label) for f in fragments]
+    rows = sum(f.metadata.num_rows for f in fragments)
+    return LayerParts(parts, _read_parquet_file, whole.label, whole.crs, whole.fields, rows, on_workers=True)
+
+
+def _read_arrow_layer(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
+    from . import parquet
+
+    layer, where = part
+    for batch in layer.batches(fields, where, batch_rows):
+        yield parquet.points_of_table(batch, layer, fields)
+
+
+def _read_parquet_file(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
+    import pyarrow.dataset as pads
+
+    from . import parquet
+
+    path, base, where, geometry, label = part
+    # Hive folders (key=value) hold fields the file itself lacks: read it as a one-file dataset
+    # with the same partitioning, so they are fields here too (and the filter may use them)
+    partitioning = pads.HivePartitioning.discover(infer_dictionary=False) if base else None
+    dataset = pads.dataset([path], format="parquet", partitioning=partitioning, partition_base_dir=base)
+    layer = parquet.ArrowLayer(dataset, geometry, f"{label} (file {path!r})")
+    for batch in layer.batches(fields, where, batch_rows):
+        yield parquet.points_of_table(batch, layer, fields)
 
 
 # --------------------------------------------------------------------------------------------
