@@ -18,7 +18,7 @@ import pandas as pd
 
 from . import grouping
 
-__all__ = ["KeyTable", "key_table", "merge_key_tables"]
+__all__ = ["KeyTable", "key_table", "key_table_and_codes", "merge_key_tables"]
 
 #: how each per-group column merges: sums add, extents take the smaller or larger end
 MERGE_RULES = {"sum": "sum", "min": "min", "max": "max"}
@@ -103,15 +103,30 @@ def key_table(
     >>> t.keys["zone"].tolist(), t.values["n"].tolist()
     (['a', 'b'], [1.0, 2.0])
     """
+    return key_table_and_codes(attributes, fields, values, rules, per_row)[0]
+
+
+def key_table_and_codes(
+    attributes, fields, values=None, rules=None, per_row=None
+) -> tuple[KeyTable, np.ndarray]:
+    """:func:`key_table` and the batch-local code of every point (a row of the table)."""
     fields = tuple(fields)
     values, rules = dict(values or {}), dict(rules or {})
     local = grouping.group_features(attributes, list(fields))
     codes = local.codes if per_row is None else local.codes[per_row]
     reduced = {}
     for name, column in values.items():
-        rule = MERGE_RULES[rules[name]]
-        reduced[name] = pd.Series(column).groupby(codes).agg(rule).reindex(range(local.count)).to_numpy()
-    return KeyTable(fields, local.keys.reset_index(drop=True), pd.DataFrame(reduced), rules)
+        reduced[name] = _reduce(codes, np.asarray(column, dtype=np.float64), rules[name], local.count)
+    return KeyTable(fields, local.keys.reset_index(drop=True), pd.DataFrame(reduced), rules), codes
+
+
+def _reduce(codes: np.ndarray, column: np.ndarray, rule: str, count: int) -> np.ndarray:
+    """Per-code sum, min or max of ``column`` (numpy's grouped reductions: no pandas overhead)."""
+    if rule == "sum":
+        return np.bincount(codes, column, minlength=count)
+    out = np.full(count, np.inf if rule == "min" else -np.inf)
+    (np.minimum if rule == "min" else np.maximum).at(out, codes, column)
+    return out
 
 
 def merge_key_tables(tables: Sequence[KeyTable]) -> KeyTable:
