@@ -28,13 +28,15 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
+import pandas as pd
 
 from . import grouping
-from .batchkeys import KeyTable, key_table_and_codes, merge_key_tables
+from .batchkeys import KeyTable, merge_key_tables
 from .cluster import reduce_parts
 from .errors import InputError
+from .kernels.summary import group_summary
 from .layers import PointLayer
-from .layers.stream import LayerParts
+from .layers.stream import LayerParts, prefetched
 
 __all__ = ["Prepared", "prepare", "SPILL_BYTES_PER_POINT"]
 
@@ -70,17 +72,22 @@ class _Decoded:
 def _decode(batch: PointLayer, group_by, weight, setup) -> _Decoded:
     weights = grouping.feature_weights(batch.attributes, weight, batch.label)
     x, y = setup.coordinates(batch.x, batch.y, batch.crs, batch.label)
-    w = None if weights is None else weights[batch.feature]
-    ones = np.ones(x.size)
-    wv = ones if w is None else w
-    values = {"n_points": ones, "weight_sum": wv, "xmin": x, "xmax": x, "ymin": y, "ymax": y}
-    values |= {"wx": wv * x, "wy": wv * y}
+    # one point per feature (no MultiPoint): then point i is feature i, and no gathering is needed
+    per_row = None if batch.feature.size == len(batch.attributes) else batch.feature
+    w = weights if weights is None or per_row is None else weights[per_row]
+    local = grouping.group_features(batch.attributes, list(group_by))
+    codes = local.codes if per_row is None else local.codes[per_row]
+    values = group_summary(codes, local.count, x, y, w)
     if setup.kind == "geodesic":  # unit vectors: their sum points at the group's centre
         lon, lat = np.radians(x), np.radians(y)
-        values |= {"ux": np.cos(lat) * np.cos(lon), "uy": np.cos(lat) * np.sin(lon), "uz": np.sin(lat)}
-    else:
-        values |= {"ux": ones * 0.0, "uy": ones * 0.0, "uz": ones * 0.0}
-    table, codes = key_table_and_codes(batch.attributes, group_by, values, PASS1_RULES, batch.feature)
+        for name, part in (
+            ("ux", np.cos(lat) * np.cos(lon)),
+            ("uy", np.cos(lat) * np.sin(lon)),
+            ("uz", np.sin(lat)),
+        ):
+            values[name] = np.bincount(codes, part, minlength=local.count)
+    rules = {name: PASS1_RULES[name] for name in values}
+    table = KeyTable(tuple(group_by), local.keys.reset_index(drop=True), pd.DataFrame(values), rules)
     return _Decoded(x, y, w, codes.astype(np.int32), table)
 
 
@@ -133,7 +140,7 @@ class Prepared:
     ``keys`` holds one row per group (codes in row order, sorted as
     :func:`toolbox.grouping.group_features` sorts) with ``n_points``, ``weight_sum``, the
     extent (``xmin`` ... ``ymax``), weighted coordinate sums ``wx``, ``wy`` and, for geodesic
-    distances, unit-vector sums ``ux``, ``uy``, ``uz``. Use it as a context manager, so that
+    distances (longitudes and latitudes), sums of the points' unit vectors ``ux``, ``uy``, ``uz``. Use it as a context manager, so that
     the spill is removed however the computation ends.
     """
 
@@ -144,6 +151,7 @@ class Prepared:
     batch_rows: int
     keys: KeyTable
     spill: _Spill | None = None
+    _mappings: dict = field(default_factory=dict, repr=False)
 
     @property
     def grouping(self) -> grouping.Grouping:
@@ -153,8 +161,10 @@ class Prepared:
     def batches(self) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None, np.ndarray]]:
         """Every batch again as ``(x, y, weights or None, group codes)``, codes of ``keys``."""
         if self.spill is not None:
-            for x, y, w, local, table in self.spill.read():
-                yield x, y, w, self._mapping(table)[local]
+            for index, (x, y, w, local, table) in enumerate(self.spill.read()):
+                if index not in self._mappings:  # the same for every pass
+                    self._mappings[index] = self._mapping(table)
+                yield x, y, w, self._mappings[index][local]
             return
         for batch in self.parts.batches(self._fields(), self.batch_rows):
             decoded = _decode(batch, self.group_by, self.weight, self.setup)
@@ -258,7 +268,7 @@ def prepare(
         store = _Spill(folder, weight is not None)
         try:
             tables = []
-            for batch in parts.batches(fields, batch_rows):
+            for batch in prefetched(parts.batches(fields, batch_rows)):
                 decoded = _decode(batch, group_by, weight, setup)
                 store.write(decoded)
                 tables.append(decoded.table)

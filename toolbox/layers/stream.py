@@ -20,7 +20,9 @@ is a module-level function, so parts can be sent to Dask workers. Each batch is 
 from __future__ import annotations
 
 import os
+import queue
 import sys
+import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -98,6 +100,52 @@ class LayerParts:
         fields = self.check_fields(fields)
         for part in self.parts:
             yield from self.reader(part, fields, int(batch_rows))
+
+
+def prefetched(batches: Iterator[PointLayer], depth: int = 2) -> Iterator[PointLayer]:
+    """The same batches, read ahead by a background thread while the caller works on the last.
+
+    Reading (Parquet decoding, OGR) mostly runs without Python's lock, so on two cores it
+    overlaps with the caller's numpy and pandas work. At most ``depth`` batches wait; an error
+    in the reader is raised in the caller, and stopping early stops the reader.
+
+    Examples
+    --------
+    >>> list(prefetched(iter([1, 2, 3])))
+    [1, 2, 3]
+    """
+    waiting: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    done = object()
+
+    def work():
+        try:
+            for batch in batches:
+                while not stop.is_set():
+                    try:
+                        waiting.put(batch, timeout=0.1)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+            waiting.put(done)
+        except BaseException as exc:  # handed to the caller, who raises it
+            waiting.put(exc)
+
+    thread = threading.Thread(target=work, name="pairspread-reader", daemon=True)
+    thread.start()
+    try:
+        while True:
+            item = waiting.get()
+            if item is done:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        thread.join(timeout=5)
 
 
 def check_batch_rows(batch_rows) -> int:
