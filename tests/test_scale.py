@@ -13,14 +13,17 @@ import os
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import pyproj
 import pytest
 import shapely
+from scipy.spatial.distance import pdist
 
-from toolbox import batchkeys, cluster, grouping
+from toolbox import batchkeys, cluster, estimate, grouping
 from toolbox.errors import GeometryError, InputError, ParameterError
-from toolbox.geodesy import DistanceSetup
+from toolbox.estimate import DistanceSetup, Points
+from toolbox.estimate.state import Survey
 from toolbox.layers.stream import layer_parts
-from toolbox.streaming import prepare
+from toolbox.streaming import pair_sums, prepare
 
 PLANAR = DistanceSetup("planar", "metre")
 
@@ -60,17 +63,23 @@ def test_parquet_folder_has_one_part_per_file(tmp_path, homes):
 
 def test_key_tables_merge_to_the_whole_layers_groups(homes):
     rng = np.random.default_rng(7)
-    whole = grouping.group_features(homes, ["zone", "tenure"])
+    whole = grouping.group_features(homes, ["zone", "tenure"])  # pandas' groupby: the reference
     cuts = np.sort(rng.choice(np.arange(1, len(homes)), 9, replace=False))
     pieces = np.split(rng.permutation(len(homes)), cuts)
-    tables = [
-        batchkeys.key_table(homes.iloc[p], ["zone", "tenure"], {"n": np.ones(p.size)}, {"n": "sum"})
-        for p in pieces
-    ]
+    tables = [batchkeys.key_table(homes.iloc[p], ["zone", "tenure"]) for p in pieces]
     merged = batchkeys.merge_key_tables(tables[::-1])
-    pd.testing.assert_frame_equal(merged.keys.astype(object), whole.keys.astype(object), check_column_type=False)
+    pd.testing.assert_frame_equal(
+        merged.keys.astype(object), whole.keys.astype(object), check_column_type=False
+    )
     np.testing.assert_array_equal(merged.codes(homes), whole.codes)
-    np.testing.assert_array_equal(merged.values["n"], np.bincount(whole.codes))
+    registry = batchkeys.KeyRegistry(("zone", "tenure"))
+    running = [registry.add(t.keys)[t.codes(homes.iloc[p])] for t, p in zip(tables, pieces, strict=True)]
+    table, order = registry.table()
+    pd.testing.assert_frame_equal(
+        table.keys.astype(object), whole.keys.astype(object), check_column_type=False
+    )
+    for codes, p in zip(running, pieces, strict=True):
+        np.testing.assert_array_equal(order[codes], whole.codes[p])
 
 
 @pytest.mark.parametrize("spill", [True, False])
@@ -80,16 +89,21 @@ def test_prepared_batches_replay_the_layer(homes_gpkg, homes, spill):
     with prepare(parts, group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=33, spill=spill) as ready:
         assert (ready.spill is not None) == spill
         folder = ready.spill.folder if spill else None
-        replay = list(ready.batches())
-        values = ready.keys.values
-    x, y, w, codes = (np.concatenate([b[i] for b in replay]) for i in range(4))
+        replay = list(ready.points())
+        survey = ready.survey
+    x, y, w, codes = (
+        np.concatenate([getattr(p, k) for p in replay]) for k in ("x", "y", "weights", "groups")
+    )
     xy = _coordinates(homes)
     np.testing.assert_array_equal(np.column_stack([x, y]), xy)
     np.testing.assert_array_equal(w, homes["pop"].to_numpy(dtype=float))
     np.testing.assert_array_equal(codes, whole.codes)
-    np.testing.assert_array_equal(values["n_points"], np.bincount(whole.codes))
-    np.testing.assert_allclose(values["xmax"], pd.Series(xy[:, 0]).groupby(whole.codes).max())
-    np.testing.assert_allclose(values["wy"], np.bincount(whole.codes, xy[:, 1] * w))
+    # the survey of the whole layer at once (the estimator's own), against the merged one
+    whole_survey = Survey.of(Points.build(xy[:, 0], xy[:, 1], whole.codes, whole.count, w))
+    np.testing.assert_array_equal(survey.count, whole_survey.count)
+    np.testing.assert_array_equal(survey.lo, whole_survey.lo)
+    np.testing.assert_allclose(survey.pair_weight, whole_survey.pair_weight, rtol=1e-12)
+    np.testing.assert_allclose(survey.sums, whole_survey.sums, rtol=1e-12)
     if spill:  # closed with the block: the spill is gone
         assert ready.spill is None and not os.path.exists(folder)
 
@@ -143,10 +157,86 @@ def test_pass_one_on_a_cluster_matches_this_process(local_cluster, tmp_path, hom
     here = prepare(parts, group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=16, spill=False)
     there = prepare(parts, group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=16, client=local_cluster)
     pd.testing.assert_frame_equal(there.keys.keys, here.keys.keys)
-    pd.testing.assert_frame_equal(there.keys.values, here.keys.values)
+    np.testing.assert_array_equal(there.survey.count, here.survey.count)
+    np.testing.assert_allclose(there.survey.sums, here.survey.sums, rtol=1e-12)
     dask_geopandas = pytest.importorskip("dask_geopandas")
     frame = dask_geopandas.from_geopandas(homes, npartitions=4)
     framed = prepare(
         layer_parts(frame), group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=16, client=local_cluster
     )
-    pd.testing.assert_frame_equal(framed.keys.values, here.keys.values)
+    np.testing.assert_allclose(framed.survey.pair_weight, here.survey.pair_weight, rtol=1e-12)
+
+
+# --------------------------------------------------------------------------------------------
+# streamed sums against exact totals
+
+
+GEOD = pyproj.Geod(ellps="WGS84")  # Karney's algorithm, accurate to round-off: the reference
+
+
+def _exact_totals(frame: gpd.GeoDataFrame, codes: np.ndarray, n_groups: int, weights, geodesic: bool):
+    """Σ_{i<j} w_i w_j d_ij per group by brute force: scipy's pdist, or pyproj.Geod.inv."""
+    xy = _coordinates(frame)
+    w = np.ones(len(xy)) if weights is None else weights
+    out = np.full(n_groups, np.nan)
+    for g in range(n_groups):
+        members = np.flatnonzero(codes == g)
+        if members.size < 2:
+            continue
+        i, j = np.triu_indices(members.size, k=1)
+        if geodesic:
+            a, b = xy[members[i]], xy[members[j]]
+            d = GEOD.inv(a[:, 0], a[:, 1], b[:, 0], b[:, 1])[2]
+        else:
+            d = pdist(xy[members])  # condensed order: the upper triangle row by row, as i, j
+        out[g] = float(np.dot(w[members[i]] * w[members[j]], d))
+    return out
+
+
+def _clustered_layer() -> gpd.GeoDataFrame:
+    """A dense village (σ = 2 m), a second one 3 km away, one farm 40 km off: heavy bins."""
+    rng = np.random.default_rng(11)
+    x = np.concatenate([rng.normal(0, 2, 600), 3000 + rng.normal(0, 50, 300), [40_000.0]])
+    y = np.concatenate([rng.normal(0, 2, 600), rng.normal(0, 50, 300), [5_000.0]])
+    zone = np.where(np.arange(x.size) % 3 == 0, "north", "south")
+    frame = gpd.GeoDataFrame(
+        {"zone": zone, "pop": rng.integers(1, 6, x.size).astype(float)},
+        geometry=shapely.points(500_000 + x, 6_120_000 + y),
+        crs="EPSG:32705",
+    )
+    return frame.iloc[rng.permutation(len(frame))].reset_index(drop=True)
+
+
+@pytest.mark.parametrize("layout", ["homes", "clustered"])
+@pytest.mark.parametrize("distance", ["planar", "geodesic"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_streamed_intervals_contain_the_exact_total(homes, layout, distance, weighted):
+    frame = homes.dropna(subset=["zone"]) if layout == "homes" else _clustered_layer()
+    frame = frame.reset_index(drop=True)
+    if distance == "geodesic":
+        frame = frame.to_crs("EPSG:4326")
+    weight = "pop" if weighted else None
+    setup = estimate.distance_setup(frame.crs, "the layer", distance=distance, script="test")
+    whole = grouping.group_features(frame, ["zone"])
+    weights = frame["pop"].to_numpy(dtype=float) if weighted else None
+    truth = _exact_totals(frame, whole.codes, whole.count, weights, distance == "geodesic")
+    totals = []
+    for pieces in (1, 2, 7, 50):
+        rows = -(-len(frame) // pieces)
+        for method in ("projection", "auto") if pieces == 7 else ("projection",):
+            with prepare(
+                layer_parts(frame), group_by=["zone"], weight=weight, setup=setup, batch_rows=rows
+            ) as ready:
+                sums = pair_sums(ready, tolerance=0.01, method=method)
+            live = ~np.isnan(truth)
+            assert np.all(sums.lower[live] <= truth[live]) and np.all(truth[live] <= sums.upper[live]), (
+                pieces,
+                method,
+            )
+            assert np.all(sums.rel_bound[live] <= 0.01)
+            if method == "projection":
+                totals.append(sums.total)
+    # the same points cut differently give the same state, up to the order of additions (for
+    # geodesic groups the frame's centre is itself such a sum, so the projection moves a little)
+    for other in totals[1:]:
+        np.testing.assert_allclose(other, totals[0], rtol=1e-9 if distance == "planar" else 1e-6)

@@ -1,41 +1,41 @@
 """Group keys across batches: the same group gets the same code in every batch and partition.
 
 Reading a layer whole, :func:`toolbox.grouping.group_features` codes its features at once. Read
-in batches (a stream, Dask partitions) no batch sees every group, so a first pass gathers a
-small :class:`KeyTable` per batch (the keys it holds, with per-group sums such as the count
-and weight of points); key tables merge by key, in any order and grouping, into the table of
+in batches (a stream, Dask partitions) no batch sees every group. Each batch's groups form a
+small :class:`KeyTable`; key tables merge by value, in any order and tree, into the table of
 the whole layer, whose row order is the one ``group_features`` gives (sorted, nulls last).
-Later passes turn each batch's attribute rows into codes of that table with :meth:`KeyTable.codes`.
+In one process a :class:`KeyRegistry` does the same incrementally: each batch's keys get
+running codes as they come, and :meth:`KeyRegistry.table` sorts them once at the end.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from . import grouping
 
-__all__ = ["KeyTable", "key_table", "key_table_and_codes", "merge_key_tables"]
+__all__ = ["KeyTable", "KeyRegistry", "key_table", "merge_key_tables"]
 
-#: how each per-group column merges: sums add, extents take the smaller or larger end
-MERGE_RULES = {"sum": "sum", "min": "min", "max": "max"}
+
+def _key(values) -> tuple:
+    """A hashable key of one row: nulls of any kind become None; 1 and 1.0 hash alike."""
+    return tuple(None if pd.isna(v) else v for v in values)
 
 
 @dataclass(frozen=True)
 class KeyTable:
-    """Group keys (``fields`` columns) with per-group values that merge by a known rule.
+    """Group keys: row ``i`` of ``keys`` (one column per field) is the group with code ``i``.
 
-    ``values`` holds one column per name in ``rules`` (``"sum"``, ``"min"`` or ``"max"``);
-    row ``i`` of ``keys`` and ``values`` describe the group with code ``i``.
+    Without fields there is one group (the whole layer) and ``keys`` has no columns.
     """
 
     fields: tuple[str, ...]
     keys: pd.DataFrame
-    values: pd.DataFrame
-    rules: dict
+    _lookup: dict = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def count(self) -> int:
@@ -56,10 +56,12 @@ class KeyTable:
         """
         if not self.fields:
             return np.zeros(len(attributes), dtype=np.int64)
+        if not self._lookup:
+            rows = self.keys[list(self.fields)].to_numpy(dtype=object)
+            self._lookup.update({_key(row): code for code, row in enumerate(rows)})
         local = grouping.group_features(attributes, list(self.fields))
-        known = _as_objects(self.keys).assign(_code=np.arange(len(self.keys)))
-        found = _as_objects(local.keys).merge(known, how="left", on=list(self.fields), sort=False)
-        mapping = found["_code"].fillna(-1).to_numpy(dtype=np.int64)
+        rows = local.keys[list(self.fields)].to_numpy(dtype=object)
+        mapping = np.array([self._lookup.get(_key(row), -1) for row in rows], dtype=np.int64)
         return mapping[local.codes]
 
     def grouping(self) -> grouping.Grouping:
@@ -68,111 +70,98 @@ class KeyTable:
         return grouping.Grouping(np.zeros(0, dtype=np.int64), keys)
 
 
-def _as_objects(frame: pd.DataFrame) -> pd.DataFrame:
-    """Keys as Python objects, so that batches that read a field as int64 in one batch and float64
-    (nulls present) in another still match (1 == 1.0 and hash alike)."""
-    out = frame.astype(object)
-    return out.where(out.notna(), None)
-
-
-def key_table(
-    attributes: pd.DataFrame,
-    fields: Sequence[str],
-    values: dict[str, np.ndarray] | None = None,
-    rules: dict[str, str] | None = None,
-    per_row: np.ndarray | None = None,
-) -> KeyTable:
-    """The key table of one batch: its groups and, per group, ``values`` merged by ``rules``.
-
-    Parameters
-    ----------
-    attributes : pandas.DataFrame
-        One row per feature, holding the key fields.
-    fields : sequence of str
-        Key fields (none: one group).
-    values : dict of str to ndarray, optional
-        Per-point values to reduce per group; ``per_row`` maps points to feature rows.
-    rules : dict of str to {"sum", "min", "max"}
-        How each value reduces within a group and merges between batches.
-    per_row : ndarray of int, optional
-        Row of ``attributes`` of every point (default: one point per row).
+def key_table(attributes: pd.DataFrame, fields: Sequence[str]) -> KeyTable:
+    """The key table of one batch (its groups, sorted as ``group_features`` sorts them).
 
     Examples
     --------
-    >>> t = key_table(pd.DataFrame({"zone": ["b", "a", "b"]}), ["zone"], {"n": np.ones(3)}, {"n": "sum"})
-    >>> t.keys["zone"].tolist(), t.values["n"].tolist()
-    (['a', 'b'], [1.0, 2.0])
+    >>> key_table(pd.DataFrame({"zone": ["b", "a", "b"]}), ["zone"]).keys["zone"].tolist()
+    ['a', 'b']
     """
-    return key_table_and_codes(attributes, fields, values, rules, per_row)[0]
-
-
-def key_table_and_codes(
-    attributes, fields, values=None, rules=None, per_row=None
-) -> tuple[KeyTable, np.ndarray]:
-    """:func:`key_table` and the batch-local code of every point (a row of the table)."""
-    fields = tuple(fields)
-    values, rules = dict(values or {}), dict(rules or {})
     local = grouping.group_features(attributes, list(fields))
-    codes = local.codes if per_row is None else local.codes[per_row]
-    reduced = {}
-    for name, column in values.items():
-        reduced[name] = _reduce(codes, np.asarray(column, dtype=np.float64), rules[name], local.count)
-    return KeyTable(fields, local.keys.reset_index(drop=True), pd.DataFrame(reduced), rules), codes
-
-
-def _reduce(codes: np.ndarray, column: np.ndarray, rule: str, count: int) -> np.ndarray:
-    """Per-code sum, min or max of ``column`` (numpy's grouped reductions: no pandas overhead)."""
-    if rule == "sum":
-        return np.bincount(codes, column, minlength=count)
-    out = np.full(count, np.inf if rule == "min" else -np.inf)
-    (np.minimum if rule == "min" else np.maximum).at(out, codes, column)
-    return out
+    return KeyTable(tuple(fields), local.keys.reset_index(drop=True))
 
 
 def merge_key_tables(tables: Sequence[KeyTable]) -> KeyTable:
-    """One key table from several of the same fields and rules, keys sorted as ``group_features``.
+    """One key table from several of the same fields, keys sorted as ``group_features`` sorts.
 
     Merging is associative and commutative, so batches and partitions may be merged in any
     order and tree.
 
     Examples
     --------
-    >>> a = key_table(pd.DataFrame({"z": ["b", None]}), ["z"], {"n": np.ones(2)}, {"n": "sum"})
-    >>> b = key_table(pd.DataFrame({"z": ["a", "b"]}), ["z"], {"n": np.ones(2)}, {"n": "sum"})
-    >>> m = merge_key_tables([a, b])
-    >>> m.keys["z"].fillna("(null)").tolist(), m.values["n"].tolist()
-    (['a', 'b', '(null)'], [1.0, 2.0, 1.0])
+    >>> a = key_table(pd.DataFrame({"z": ["b", None]}), ["z"])
+    >>> b = key_table(pd.DataFrame({"z": ["a", "b"]}), ["z"])
+    >>> merge_key_tables([a, b]).keys["z"].fillna("(null)").tolist()
+    ['a', 'b', '(null)']
     """
     tables = [t for t in tables if t is not None]
     first = tables[0]
-    if len(tables) == 1:
+    if len(tables) == 1 or not first.fields:
         return first
-    if not first.fields:
-        stacked = pd.concat([t.values for t in tables], ignore_index=True)
-        merged = pd.DataFrame({n: [stacked[n].agg(r)] for n, r in first.rules.items()})
-        return KeyTable((), first.keys, merged, first.rules)
-    fields = list(first.fields)
-    frames = [pd.concat([_as_objects(t.keys), t.values], axis=1) for t in tables]
-    stacked = pd.concat(frames, ignore_index=True)
-    grouped = stacked.groupby(fields, dropna=False, sort=True)
-    merged = (
-        grouped.agg({n: MERGE_RULES[r] for n, r in first.rules.items()}) if first.rules else grouped.size()
-    )
-    merged = merged.reset_index() if first.rules else merged.reset_index()[fields]
-    keys = _typed_keys(merged[fields], [t.keys for t in tables])
-    return KeyTable(first.fields, keys, merged[list(first.rules)].reset_index(drop=True), first.rules)
+    stacked = pd.concat([t.keys for t in tables], ignore_index=True)
+    return _sorted_unique(first.fields, stacked)
 
 
-def _typed_keys(keys: pd.DataFrame, originals: Sequence[pd.DataFrame]) -> pd.DataFrame:
-    """Keys back from Python objects to the columns' own dtype where the batches agree on one."""
-    out = {}
-    for field in keys.columns:
-        dtypes = {str(o[field].dtype) for o in originals if len(o) and o[field].notna().any()}
-        column = keys[field]
-        if len(dtypes) == 1:
-            try:
-                column = column.astype(next(iter(dtypes)))
-            except (TypeError, ValueError):
-                pass
-        out[field] = column.reset_index(drop=True)
-    return pd.DataFrame(out)
+def _sorted_unique(fields: tuple[str, ...], stacked: pd.DataFrame) -> KeyTable:
+    """The distinct rows of ``stacked``, sorted as ``group_features`` sorts them."""
+    rows = stacked[list(fields)]
+    try:  # the batches agree on each field's type (the usual case): pandas sorts them as is
+        keys = grouping.group_features(rows, list(fields)).keys
+    except TypeError:  # e.g. int64 in one batch and float64 (with nulls) in another
+        keys = grouping.group_features(rows.astype(object), list(fields)).keys
+    keys = keys.reset_index(drop=True)
+    unique = {_key(row) for row in keys.to_numpy(dtype=object)}
+    if len(unique) < len(keys):  # 1 and 1.0 in different batches: one group
+        keys = grouping.group_features(keys.astype(object).where(keys.notna(), None), list(fields)).keys
+    return KeyTable(fields, keys.reset_index(drop=True))
+
+
+@dataclass
+class KeyRegistry:
+    """Group keys met so far, numbered as they come (a running code per key).
+
+    Examples
+    --------
+    >>> registry = KeyRegistry(("zone",))
+    >>> registry.add(pd.DataFrame({"zone": ["b", "c"]})).tolist(), registry.add(pd.DataFrame({"zone": ["a", "b"]})).tolist()
+    ([0, 1], [2, 0])
+    >>> table, order = registry.table()
+    >>> table.keys["zone"].tolist(), order.tolist()
+    (['a', 'b', 'c'], [1, 2, 0])
+    """
+
+    fields: tuple[str, ...]
+    codes: dict = field(default_factory=dict)
+    rows: list = field(default_factory=list)
+
+    @property
+    def count(self) -> int:
+        """Number of groups met so far (1 without fields)."""
+        return len(self.codes) if self.fields else 1
+
+    def add(self, keys: pd.DataFrame) -> np.ndarray:
+        """Running codes of the rows of ``keys`` (one row per group of a batch), new ones added."""
+        if not self.fields:
+            return np.zeros(1, dtype=np.int64)
+        frame = keys[list(self.fields)]
+        out = np.empty(len(frame), dtype=np.int64)
+        new = []
+        for i, row in enumerate(frame.to_numpy(dtype=object)):
+            key = _key(row)
+            code = self.codes.get(key)
+            if code is None:
+                code = self.codes[key] = len(self.codes)
+                new.append(i)
+            out[i] = code
+        if new:
+            self.rows.append(frame.iloc[new])
+        return out
+
+    def table(self) -> tuple[KeyTable, np.ndarray]:
+        """The sorted key table, and the code in it of every running code."""
+        if not self.fields:
+            return KeyTable((), pd.DataFrame(index=range(1))), np.zeros(1, dtype=np.int64)
+        table = _sorted_unique(self.fields, pd.concat(self.rows, ignore_index=True))
+        rows = pd.concat(self.rows, ignore_index=True).to_numpy(dtype=object)
+        return table, table.codes(pd.DataFrame(rows, columns=list(self.fields)))

@@ -1,21 +1,25 @@
-"""A layer read in batches, made ready for the estimator: pass 1, group codes, and a spill.
+"""The estimator's passes over a layer read in batches: in this process, or on a Dask cluster.
 
-The estimator's binned state is planned from per-group count, weight and extent, then filled
-batch by batch. :func:`prepare` is that first pass: it reads every batch once (in this process,
-or on the Dask workers), checks weights and geometries, turns coordinates into the estimator's
-(planar in the layer's CRS or in ``--crs``, or longitude and latitude for geodesic distances)
-and gathers a :class:`~toolbox.batchkeys.KeyTable` of the groups with their count, weight,
-extent and centroid sums. The result, :class:`Prepared`, replays the layer as estimator-ready
-batches ``(x, y, weights, codes)`` as often as later passes need:
+The estimator's mergeable state (:mod:`toolbox.estimate.state`) is planned from a survey of
+every group (count, weight, extent), filled batch by batch, refined where bins are too heavy and
+finished once. This module runs those passes over a layer in parts
+(:func:`toolbox.layers.stream.layer_parts`):
 
-- in this process, pass 1 also writes each batch's decoded columns to a spill file in the
-  temporary folder (about 28 bytes a point, when the disk has twice that free); later passes
-  read it back instead of decoding the source again, which costs a fraction of parsing WKB
-  or OGR features (and the OS's page cache usually still holds it);
-- otherwise (no room, or on a cluster, where each worker reads its own partition) later passes
-  read the source again and code each batch from the key table.
+1. **Survey** (:func:`prepare`): every batch is read once, its weights and geometries checked,
+   its coordinates turned into the estimator's (planar in the layer's CRS or in ``--crs``, or
+   longitude and latitude), its groups coded, and surveyed. No batch sees every group, so
+   group keys are merged by value (:mod:`toolbox.batchkeys`) and each batch's survey is recoded
+   to the merged codes; the result is the same survey, with the same group order, as a
+   whole-layer read gives.
+2. **Sums** (:func:`pair_sums`): with the plan fixed, every batch gives a state and the states
+   are merged; a third pass runs only if some bins need refining; then the state is finished.
 
-Memory stays bounded by one batch and the key table, whatever the layer's size.
+In this process the survey pass also writes each batch's decoded columns (coordinates, weight,
+batch-local group code: 28 bytes a point) to a spill file in the temporary folder, when there
+is room for twice that; the later passes read it back instead of decoding the source again. On
+a cluster each worker reads and summarises its own parts, the summaries are merged in a tree on
+the workers, and only surveys and states reach the client, never coordinates. Memory holds one
+batch (and one read ahead), the key table and the state, whatever the layer's size.
 """
 
 from __future__ import annotations
@@ -24,75 +28,105 @@ import functools
 import os
 import shutil
 import tempfile
-from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass, field, replace
 
 import numpy as np
-import pandas as pd
 
-from . import grouping
-from .batchkeys import KeyTable, merge_key_tables
+from . import estimate, grouping
+from .batchkeys import KeyRegistry, KeyTable, merge_key_tables
 from .cluster import reduce_parts
 from .errors import InputError
-from .kernels.summary import group_summary
+from .estimate.state import Survey
 from .layers import PointLayer
 from .layers.stream import LayerParts, prefetched
 
-__all__ = ["Prepared", "prepare", "SPILL_BYTES_PER_POINT"]
+__all__ = ["Prepared", "prepare", "pair_sums", "SPILL_BYTES_PER_POINT"]
 
 #: bytes a point takes in the spill: x, y and weight as float64, its batch-local group code
 SPILL_BYTES_PER_POINT = 28
-#: per-group values gathered in pass 1 and how they merge
-PASS1_RULES = {
-    "n_points": "sum",
-    "weight_sum": "sum",
-    "xmin": "min",
-    "xmax": "max",
-    "ymin": "min",
-    "ymax": "max",
-    "wx": "sum",
-    "wy": "sum",
-    "ux": "sum",
-    "uy": "sum",
-    "uz": "sum",
-}
+
+
+# --------------------------------------------------------------------------------------------
+# pass 1: decode, code and survey every batch
 
 
 @dataclass
 class _Decoded:
-    """One batch in the estimator's coordinates, with its local group codes and keys."""
+    """One batch in the estimator's coordinates with its batch-local group codes and keys."""
 
     x: np.ndarray
     y: np.ndarray
     w: np.ndarray | None
     local_codes: np.ndarray
-    table: KeyTable
+    keys: KeyTable
+
+
+@dataclass(frozen=True)
+class _Surveyed:
+    """Group keys and the survey of some batches, its groups coded as the keys' rows."""
+
+    keys: KeyTable
+    survey: Survey
 
 
 def _decode(batch: PointLayer, group_by, weight, setup) -> _Decoded:
     weights = grouping.feature_weights(batch.attributes, weight, batch.label)
     x, y = setup.coordinates(batch.x, batch.y, batch.crs, batch.label)
-    # one point per feature (no MultiPoint): then point i is feature i, and no gathering is needed
-    per_row = None if batch.feature.size == len(batch.attributes) else batch.feature
-    w = weights if weights is None or per_row is None else weights[per_row]
     local = grouping.group_features(batch.attributes, list(group_by))
+    # one point per feature (no MultiPoint): point i is feature i, no gathering needed
+    per_row = None if batch.feature.size == len(batch.attributes) else batch.feature
     codes = local.codes if per_row is None else local.codes[per_row]
-    values = group_summary(codes, local.count, x, y, w)
-    if setup.kind == "geodesic":  # unit vectors: their sum points at the group's centre
-        lon, lat = np.radians(x), np.radians(y)
-        for name, part in (
-            ("ux", np.cos(lat) * np.cos(lon)),
-            ("uy", np.cos(lat) * np.sin(lon)),
-            ("uz", np.sin(lat)),
-        ):
-            values[name] = np.bincount(codes, part, minlength=local.count)
-    rules = {name: PASS1_RULES[name] for name in values}
-    table = KeyTable(tuple(group_by), local.keys.reset_index(drop=True), pd.DataFrame(values), rules)
-    return _Decoded(x, y, w, codes.astype(np.int32), table)
+    w = weights if weights is None or per_row is None else weights[per_row]
+    return _Decoded(x, y, w, codes, KeyTable(tuple(group_by), local.keys.reset_index(drop=True)))
 
 
-def _pass1_summary(batch: PointLayer, group_by, weight, setup) -> KeyTable:
-    return _decode(batch, group_by, weight, setup).table
+def _points(decoded: _Decoded, codes: np.ndarray, n_groups: int, setup) -> estimate.Points:
+    return estimate.Points.build(decoded.x, decoded.y, codes, n_groups, decoded.w, distance=setup)
+
+
+def _survey_batch(batch: PointLayer, group_by, weight, setup) -> _Surveyed:
+    decoded = _decode(batch, group_by, weight, setup)
+    count = max(decoded.keys.count, 1)
+    return _Surveyed(decoded.keys, Survey.of(_points(decoded, decoded.local_codes, count, setup)))
+
+
+def recode_survey(survey: Survey, mapping: np.ndarray, n_groups: int) -> Survey:
+    """The survey with group ``i`` renumbered ``mapping[i]``, among ``n_groups`` groups.
+
+    Groups without points get the neutral values (zero sums, empty extents), so recoded surveys
+    of different batches merge as surveys of the same groups.
+    """
+
+    def spread(values, fill):
+        out = np.full((n_groups, *values.shape[1:]), fill, dtype=values.dtype)
+        out[mapping] = values
+        return out
+
+    return replace(
+        survey,
+        n_groups=n_groups,
+        count=spread(survey.count, 0),
+        weight_sum=spread(survey.weight_sum, 0.0),
+        pair_weight=spread(survey.pair_weight, 0.0),
+        sums=spread(survey.sums, 0.0),
+        lo=spread(survey.lo, np.inf),
+        hi=spread(survey.hi, -np.inf),
+    )
+
+
+def _merge_surveyed(parts: list[_Surveyed]) -> _Surveyed:
+    keys = merge_key_tables([p.keys for p in parts])
+    survey = None
+    for part in parts:
+        mapping = keys.codes(part.keys.keys) if keys.fields else np.zeros(1, dtype=np.int64)
+        recoded = recode_survey(part.survey, mapping, keys.count)
+        survey = recoded if survey is None else survey.merge(recoded)
+    return _Surveyed(keys, survey)
+
+
+# --------------------------------------------------------------------------------------------
+# the spill
 
 
 @dataclass
@@ -101,47 +135,80 @@ class _Spill:
 
     folder: str
     weighted: bool
-    batches: list = field(default_factory=list)  # (offset, n, keys of the batch)
+    batches: list = field(default_factory=list)  # (offset, points) of every batch
 
     @property
     def path(self) -> str:
         return os.path.join(self.folder, "points.bin")
 
-    def write(self, decoded: _Decoded) -> None:
+    def write(self, x, y, w, codes) -> None:
         offset = os.path.getsize(self.path) if os.path.exists(self.path) else 0
         with open(self.path, "ab") as handle:
-            for column in (
-                decoded.x,
-                decoded.y,
-                *([decoded.w] if self.weighted else []),
-                decoded.local_codes,
-            ):
-                handle.write(np.ascontiguousarray(column).tobytes())
-        self.batches.append((offset, decoded.x.size, decoded.table))
+            for column in (x, y, *([w] if self.weighted else []), codes.astype(np.int32)):
+                handle.write(memoryview(np.ascontiguousarray(column)))
+        self.batches.append((offset, x.size))
 
-    def read(self) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None, np.ndarray, KeyTable]]:
+    def read(self) -> Iterator[tuple]:
+        """``(x, y, weights or None, codes)`` of every batch, in the order written."""
         with open(self.path, "rb") as handle:
-            for offset, n, table in self.batches:
+            for offset, n in self.batches:
                 handle.seek(offset)
                 x = np.fromfile(handle, np.float64, n)
                 y = np.fromfile(handle, np.float64, n)
                 w = np.fromfile(handle, np.float64, n) if self.weighted else None
-                codes = np.fromfile(handle, np.int32, n)
-                yield x, y, w, codes, table
+                yield x, y, w, np.fromfile(handle, np.int32, n)
 
     def close(self) -> None:
         shutil.rmtree(self.folder, ignore_errors=True)
 
 
+def _spill_folder(parts: LayerParts) -> str | None:
+    """A new folder for the spill when the temporary folder has room for twice its size."""
+    if parts.rows is None:
+        return None
+    base = tempfile.gettempdir()
+    if shutil.disk_usage(base).free < 2 * SPILL_BYTES_PER_POINT * parts.rows:
+        return None
+    return tempfile.mkdtemp(prefix="pairspread-spill-", dir=base)
+
+
+# --------------------------------------------------------------------------------------------
+# the prepared layer
+
+
+def _batch_then(batch: PointLayer, keys: KeyTable, group_by, weight, setup, then: Callable):
+    """On a worker: decode a batch, code its groups as ``keys`` does, and hand it to ``then``."""
+    decoded = _decode(batch, group_by, weight, setup)
+    mapping = _mapping(keys, decoded.keys, batch.label)
+    return then(_points(decoded, mapping[decoded.local_codes], keys.count, setup))
+
+
+def _mapping(keys: KeyTable, local: KeyTable, label: str) -> np.ndarray:
+    if not keys.fields:
+        return np.zeros(1, dtype=np.int64)
+    codes = keys.codes(local.keys)
+    if (codes < 0).any():
+        raise InputError(
+            f"{label} changed while it was read (a group appeared that the first pass did not "
+            "see); run again when nothing writes to it."
+        )
+    return codes
+
+
+def _merge_states(states: list):
+    out = states[0]
+    for state in states[1:]:
+        out = out.merge(state)
+    return out
+
+
 @dataclass
 class Prepared:
-    """The outcome of pass 1: the groups of the whole layer and a way to replay its batches.
+    """A layer after the survey pass: its groups, their survey, and its batches to replay.
 
-    ``keys`` holds one row per group (codes in row order, sorted as
-    :func:`toolbox.grouping.group_features` sorts) with ``n_points``, ``weight_sum``, the
-    extent (``xmin`` ... ``ymax``), weighted coordinate sums ``wx``, ``wy`` and, for geodesic
-    distances (longitudes and latitudes), sums of the points' unit vectors ``ux``, ``uy``, ``uz``. Use it as a context manager, so that
-    the spill is removed however the computation ends.
+    ``keys`` holds one row per group (sorted as :func:`toolbox.grouping.group_features` sorts);
+    ``survey`` the estimator's survey with groups coded as those rows. Use it as a context
+    manager, so that the spill is removed however the computation ends.
     """
 
     parts: LayerParts
@@ -150,39 +217,56 @@ class Prepared:
     setup: object
     batch_rows: int
     keys: KeyTable
+    survey: Survey
+    client: object = None
     spill: _Spill | None = None
-    _mappings: dict = field(default_factory=dict, repr=False)
+    order: np.ndarray | None = None  # code in ``keys`` of each running code in the spill
 
     @property
-    def grouping(self) -> grouping.Grouping:
-        """The groups as a :class:`toolbox.grouping.Grouping` (keys only), for naming rows."""
+    def groups(self) -> grouping.Grouping:
+        """The groups as a :class:`toolbox.grouping.Grouping` (keys only), for the table's rows."""
         return self.keys.grouping()
 
-    def batches(self) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray | None, np.ndarray]]:
-        """Every batch again as ``(x, y, weights or None, group codes)``, codes of ``keys``."""
-        if self.spill is not None:
-            for index, (x, y, w, local, table) in enumerate(self.spill.read()):
-                if index not in self._mappings:  # the same for every pass
-                    self._mappings[index] = self._mapping(table)
-                yield x, y, w, self._mappings[index][local]
-            return
-        for batch in self.parts.batches(self._fields(), self.batch_rows):
-            decoded = _decode(batch, self.group_by, self.weight, self.setup)
-            yield decoded.x, decoded.y, decoded.w, self._mapping(decoded.table)[decoded.local_codes]
+    def names(self) -> Callable[[int], str]:
+        """How notes name a group."""
+        return grouping.group_namer(self.groups.keys)
 
     def _fields(self) -> list[str]:
         return [*self.group_by, *([self.weight] if self.weight else [])]
 
-    def _mapping(self, table: KeyTable) -> np.ndarray:
-        if not self.group_by:
-            return np.zeros(1, dtype=np.int64)
-        codes = self.keys.codes(table.keys)
-        if (codes < 0).any():
-            raise InputError(
-                f"{self.parts.label} changed while it was read (a group appeared that the first "
-                "pass did not see); read it again when nothing writes to it."
-            )
-        return codes
+    def points(self) -> Iterator[estimate.Points]:
+        """Every batch again as estimator points, groups coded as ``keys`` (this process only)."""
+        n = self.keys.count
+        if self.spill is not None:
+            for x, y, w, codes in self.spill.read():
+                yield estimate.Points.build(x, y, self.order[codes], n, w, distance=self.setup)
+            return
+        for batch in prefetched(self.parts.batches(self._fields(), self.batch_rows)):
+            decoded = _decode(batch, self.group_by, self.weight, self.setup)
+            mapping = _mapping(self.keys, decoded.keys, batch.label)
+            yield _points(decoded, mapping[decoded.local_codes], n, self.setup)
+
+    def reduce(self, summarise: Callable, merge: Callable = _merge_states):
+        """One more pass: ``merge`` of ``summarise(points)`` over every batch (on the cluster, if any).
+
+        ``summarise`` must pickle (a bound method of a plan, or a ``functools.partial``) when
+        the layer was prepared on a cluster.
+        """
+        if self.client is None:
+            result = None
+            for points in self.points():
+                mine = summarise(points)
+                result = mine if result is None else merge([result, mine])
+            return result
+        then = functools.partial(
+            _batch_then,
+            keys=self.keys,
+            group_by=self.group_by,
+            weight=self.weight,
+            setup=self.setup,
+            then=summarise,
+        )
+        return reduce_parts(self.parts, self._fields(), self.batch_rows, then, merge, client=self.client)
 
     def close(self) -> None:
         if self.spill is not None:
@@ -196,17 +280,6 @@ class Prepared:
         self.close()
 
 
-def _spill_folder(parts: LayerParts) -> str | None:
-    """A new folder for the spill when the temporary folder has room for twice its size."""
-    if parts.rows is None:
-        return None
-    base = tempfile.gettempdir()
-    needed = 2 * SPILL_BYTES_PER_POINT * parts.rows
-    if shutil.disk_usage(base).free < needed:
-        return None
-    return tempfile.mkdtemp(prefix="pairspread-spill-", dir=base)
-
-
 def prepare(
     parts: LayerParts,
     *,
@@ -216,9 +289,8 @@ def prepare(
     batch_rows: int,
     client=None,
     spill: bool = True,
-    progress=None,
 ) -> Prepared:
-    """Pass 1 over a layer in parts: its groups and their count, weight and extent.
+    """The survey pass over a layer in parts: its groups, coded and surveyed.
 
     Parameters
     ----------
@@ -229,11 +301,11 @@ def prepare(
     weight : str, optional
         Weight field (checked in every batch: finite and non-negative).
     setup : DistanceSetup
-        How coordinates become the estimator's.
+        How coordinates become the estimator's (:func:`toolbox.estimate.distance_setup`).
     batch_rows : int
         Most features per batch.
     client : distributed.Client, optional
-        Read and summarise the parts on this cluster (no spill: workers reread their parts).
+        Read and survey the parts on this cluster (and run the later passes there too).
     spill : bool
         In this process, keep the decoded batches in a temporary file for the later passes.
 
@@ -244,42 +316,76 @@ def prepare(
     Examples
     --------
     >>> import geopandas, shapely
-    >>> from toolbox.geodesy import DistanceSetup
+    >>> from toolbox.estimate import DistanceSetup
     >>> from toolbox.layers.stream import layer_parts
     >>> frame = geopandas.GeoDataFrame({"zone": list("abab")}, geometry=shapely.points([0, 1, 5, 7], 0))
     >>> setup = DistanceSetup("planar", "unknown")
     >>> with prepare(layer_parts(frame), group_by=["zone"], weight=None, setup=setup, batch_rows=3) as ready:
-    ...     print(ready.keys.values[["n_points", "xmin", "xmax"]].to_numpy().tolist())
-    ...     print([codes.tolist() for _, _, _, codes in ready.batches()])
-    [[2.0, 0.0, 5.0], [2.0, 1.0, 7.0]]
-    [[0, 1, 0], [1]]
+    ...     print(ready.survey.count.tolist(), [p.groups.tolist() for p in ready.points()])
+    [2, 2] [[0, 1, 0], [1]]
     """
     group_by = tuple(group_by or ())
     fields = [*group_by, *([weight] if weight else [])]
     parts.check_fields(fields)
-    folder = _spill_folder(parts) if spill and client is None else None
-    if folder is None:
-        summarise = functools.partial(_pass1_summary, group_by=group_by, weight=weight, setup=setup)
-        keys = reduce_parts(
-            parts, fields, batch_rows, summarise, merge_key_tables, client=client, progress=progress
-        )
-        store = None
-    else:
-        store = _Spill(folder, weight is not None)
-        try:
-            tables = []
-            for batch in prefetched(parts.batches(fields, batch_rows)):
-                decoded = _decode(batch, group_by, weight, setup)
-                store.write(decoded)
-                tables.append(decoded.table)
-                if len(tables) >= 64:  # keep the list of key tables short
-                    tables = [merge_key_tables(tables)]
-            keys = merge_key_tables(tables) if tables else None
-        except BaseException:
-            store.close()
-            raise
-    if keys is None:
+    if client is not None:
+        summarise = functools.partial(_survey_batch, group_by=group_by, weight=weight, setup=setup)
+        surveyed = reduce_parts(parts, fields, batch_rows, summarise, _merge_surveyed, client=client)
+        if surveyed is None:
+            raise _empty(parts)
+        return Prepared(parts, group_by, weight, setup, batch_rows, surveyed.keys, surveyed.survey, client)
+    folder = _spill_folder(parts) if spill else None
+    store = None if folder is None else _Spill(folder, weight is not None)
+    try:
+        registry, survey = KeyRegistry(group_by), None
+        for batch in prefetched(parts.batches(fields, batch_rows)):
+            decoded = _decode(batch, group_by, weight, setup)
+            running = registry.add(decoded.keys.keys)[decoded.local_codes]
+            if store is not None:
+                store.write(decoded.x, decoded.y, decoded.w, running)
+            mine = Survey.of(_points(decoded, running, registry.count, setup))
+            survey = (
+                mine if survey is None else recode_survey(survey, _all(survey), registry.count).merge(mine)
+            )
+        if survey is None:
+            raise _empty(parts)
+        keys, order = registry.table()
+    except BaseException:
         if store is not None:
             store.close()
-        raise InputError(f"{parts.label} has no feature to compute with.")
-    return Prepared(parts, group_by, weight, setup, batch_rows, keys, store)
+        raise
+    ready = Prepared(
+        parts, group_by, weight, setup, batch_rows, keys, recode_survey(survey, order, keys.count)
+    )
+    ready.spill, ready.order = store, order
+    return ready
+
+
+def _all(survey: Survey) -> np.ndarray:
+    return np.arange(survey.n_groups)
+
+
+def _empty(parts: LayerParts) -> InputError:
+    return InputError(
+        f"{parts.label} has no feature to compute with; check the input and any --where filter."
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# passes 2 and 3
+
+
+def pair_sums(ready: Prepared, *, tolerance: float, method: str) -> estimate.GroupPairSums:
+    """Every group's pair total with its guaranteed interval, from the prepared layer's passes.
+
+    On a cluster, ``auto`` bins small groups too (gathering their points for exact sums would
+    bring coordinates to one place); the guarantee is the same.
+    """
+    if ready.client is not None and method == "auto" and tolerance > 0:
+        method = "projection"
+    plan = ready.survey.plan(tolerance=tolerance, method=method, names=ready.names())
+    state = ready.reduce(plan.accumulate)
+    refinement = state.refinement(plan)
+    refined = None
+    if refinement is not None:
+        refined = ready.reduce(functools.partial(refinement.accumulate, plan))
+    return state.finish(plan, refined)
