@@ -123,7 +123,7 @@ def test_bad_weights_and_geometries_stop_pass_one(tmp_path, homes):
 
 
 def test_layers_only_this_process_reads_are_refused_on_a_cluster(homes):
-    with pytest.raises(ParameterError, match="only be read by this process"):
+    with pytest.raises(ParameterError, match="Only this process can read the GeoDataFrame"):
         cluster.reduce_parts(layer_parts(homes), [], 10, len, sum, client=object())
     with pytest.raises(ParameterError, match="fiona engine"):
         layer_parts("anything.gpkg", engine="fiona")
@@ -240,3 +240,93 @@ def test_streamed_intervals_contain_the_exact_total(homes, layout, distance, wei
     # geodesic groups the frame's centre is itself such a sum, so the projection moves a little)
     for other in totals[1:]:
         np.testing.assert_allclose(other, totals[0], rtol=1e-9 if distance == "planar" else 1e-6)
+
+
+# --------------------------------------------------------------------------------------------
+# the scripts: streamed, on a cluster, and bad input
+
+
+def _run_cli(*args) -> tuple[int, str]:
+    import contextlib
+    import io
+
+    from toolbox.cli import main
+
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err):
+        code = main([str(a) for a in args])
+    return code, err.getvalue()
+
+
+def test_group_spread_on_a_cluster_matches_one_process(local_cluster, tmp_path, homes, reference):
+    import toolbox
+
+    _write_parts(homes, tmp_path / "homes", 4)
+    address = local_cluster.scheduler.address
+    common = dict(group_by="zone", weight="pop", tolerance=0.01)
+    whole = toolbox.group_spread(tmp_path / "homes", **common)  # read whole, auto
+    there = toolbox.group_spread(tmp_path / "homes", dask_scheduler=address, **common)
+    streamed = toolbox.group_spread(tmp_path / "homes", batch_rows=40, method="projection", **common)
+    for column in ("zone", "n_points", "weight_sum", "pair_weight", "units"):
+        assert there[column].tolist() == whole[column].tolist(), column
+    # on the cluster every group is binned: the same sums as streaming here with the projection
+    np.testing.assert_allclose(there["total_dist"], streamed["total_dist"], rtol=1e-9)
+    reference = reference(homes, ["zone"], "pop")  # scipy pdist
+    for _, row in there.iterrows():
+        key = (None if pd.isna(row["zone"]) else row["zone"],)
+        truth = reference[key]["total_dist"]
+        if not np.isnan(truth):
+            assert row["total_lo"] <= truth <= row["total_hi"], key
+    frame = pytest.importorskip("dask_geopandas").from_geopandas(homes, npartitions=3)
+    framed = toolbox.group_spread(frame, dask_scheduler=address, **common)
+    np.testing.assert_allclose(framed["total_dist"], there["total_dist"], rtol=1e-9)
+
+
+def test_group_spread_streams_with_batch_rows(tmp_path, homes_gpkg, homes, reference):
+    out = tmp_path / "spread.csv"
+    code, err = _run_cli(
+        "group-spread",
+        *homes_gpkg.args,
+        "--group-by",
+        "zone",
+        "--weight",
+        "pop",
+        "--batch-rows",
+        "25",
+        "--output",
+        out,
+    )
+    assert code == 0, err
+    table = pd.read_csv(out)
+    reference = reference(homes, ["zone"], "pop")
+    for _, row in table.iterrows():
+        truth = reference[(None if pd.isna(row["zone"]) else row["zone"],)]["total_dist"]
+        if not np.isnan(truth):
+            assert row["total_lo"] <= truth <= row["total_hi"]
+
+
+def test_bad_input_on_streams_is_one_line_and_writes_nothing(tmp_path, homes, monkeypatch):
+    out = tmp_path / "spread.csv"
+    folder = tmp_path / "mixed"
+    _write_parts(homes, folder, 2)
+    homes.iloc[:5].to_crs("EPSG:4326").to_parquet(folder / "part-9.parquet")
+    code, err = _run_cli("group-spread", folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+    assert (
+        code != 0 and "do not agree" in err and "CRS EPSG:4326" in err and len(err.strip().splitlines()) == 1
+    )
+    (folder / "part-9.parquet").unlink()
+    holed = homes.iloc[:10].copy()
+    holed.loc[holed.index[3], "geometry"] = None
+    holed.to_parquet(folder / "part-1.parquet")
+    code, err = _run_cli("group-spread", folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+    assert (
+        code != 0 and "part-1.parquet" in err and "no geometry" in err and len(err.strip().splitlines()) == 1
+    )
+    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1)
+    code, err = _run_cli(
+        "group-spread", folder, "--group-by", "zone", "--dask-scheduler", "tcp://127.0.0.1:9", "--output", out
+    )
+    assert code != 0 and "No Dask scheduler answered" in err and len(err.strip().splitlines()) == 1
+    code, err = _run_cli("point-remoteness", folder, "--batch-rows", "50", "--output", tmp_path / "r.gpkg")
+    assert code != 0 and "reads its layer whole" in err
+    assert not out.exists() and not (tmp_path / "r.gpkg").exists()

@@ -96,8 +96,9 @@ def reduce_parts(
     batch_rows = check_batch_rows(batch_rows)
     if client is not None and not parts.on_workers:
         raise ParameterError(
-            f"{parts.label} can only be read by this process, not by Dask workers; give a "
-            "GeoParquet dataset (a file, folder or glob) or a dask-geopandas GeoDataFrame."
+            f"Only this process can read {parts.label}, not the Dask workers; give "
+            "--dask-scheduler a GeoParquet dataset (a .parquet file, a folder or a glob) or, from "
+            "Python, a dask-geopandas GeoDataFrame."
         )
     if client is None:
         result = None

@@ -68,6 +68,8 @@ class LayerParts:
         Number of features when known cheaply (before any filter).
     on_workers : bool
         Whether the parts can be read on Dask workers (files, partitions) rather than only here.
+    source : {"ogr", "frame", "parquet", "dask"}
+        What the parts are: an OGR layer, a frame in memory, GeoParquet files, Dask partitions.
     """
 
     parts: list
@@ -77,6 +79,7 @@ class LayerParts:
     fields: list[str]
     rows: int | None = None
     on_workers: bool = False
+    source: str = "ogr"
 
     def check_fields(self, fields: Sequence[str]) -> list[str]:
         """The fields, without repeats, each checked to exist."""
@@ -192,7 +195,7 @@ def layer_parts(
             raise ParameterError("A where filter applies to files only; filter the GeoDataFrame first.")
         label = "the GeoDataFrame"
         fields = [str(c) for c in data.columns if c != data.geometry.name]
-        return LayerParts([(data, label)], _read_frame, label, data.crs, fields, len(data))
+        return LayerParts([(data, label)], _read_frame, label, data.crs, fields, len(data), source="frame")
     from . import parquet
 
     if isinstance(data, parquet.ArrowLayer) or parquet.is_parquet(data):
@@ -265,11 +268,22 @@ def _parquet_parts(data, layer, where) -> LayerParts:
         parquet.parse_where(where, whole.dataset.schema.names)
     fragments = list(whole.dataset.get_fragments())
     if not all(isinstance(f, pads.FileFragment) for f in fragments):  # a table in memory
-        return LayerParts([(whole, where)], _read_arrow_layer, whole.label, whole.crs, whole.fields)
+        return LayerParts(
+            [(whole, where)], _read_arrow_layer, whole.label, whole.crs, whole.fields, source="frame"
+        )
     base = os.fspath(data) if not isinstance(data, parquet.ArrowLayer) and os.path.isdir(data) else None
     parts = [(f.path, base, where, whole.geometry, whole.label) for f in fragments]
     rows = sum(f.metadata.num_rows for f in fragments)
-    return LayerParts(parts, _read_parquet_file, whole.label, whole.crs, whole.fields, rows, on_workers=True)
+    return LayerParts(
+        parts,
+        _read_parquet_file,
+        whole.label,
+        whole.crs,
+        whole.fields,
+        rows,
+        on_workers=True,
+        source="parquet",
+    )
 
 
 def _read_arrow_layer(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
@@ -310,7 +324,9 @@ def _dask_parts(frame) -> LayerParts:
     geometry = frame.geometry.name
     fields = [str(c) for c in frame.columns if c != geometry]
     parts = [(partition, f"partition {i} of {label}") for i, partition in enumerate(frame.to_delayed())]
-    return LayerParts(parts, _read_dask_partition, label, frame.crs, fields, None, on_workers=True)
+    return LayerParts(
+        parts, _read_dask_partition, label, frame.crs, fields, None, on_workers=True, source="dask"
+    )
 
 
 def _read_dask_partition(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
