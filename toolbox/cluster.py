@@ -36,10 +36,13 @@ FAN_IN = 8
 CONNECT_TIMEOUT = 10
 
 
-def _summarise_part(read, part, fields, batch_rows, summarise, merge, index):
+def _summarise_part(read, part, fields, batch_rows, summarise, merge, in_place):
     """One part's summary: each batch summarised, then merged (memory: one batch at a time)."""
     result = None
     for batch in read(part, fields, batch_rows):  # messages name the part (its file, its number)
+        if in_place:
+            result = summarise(batch, into=result)
+            continue
         mine = summarise(batch)
         result = mine if result is None else merge([result, mine])
     return result
@@ -56,6 +59,7 @@ def reduce_parts(
     summarise: Callable[[PointLayer], Any],
     merge: Callable[[list], Any],
     *,
+    in_place: bool = False,
     client=None,
     progress: Callable[[int, int], None] | None = None,
 ):
@@ -74,6 +78,9 @@ def reduce_parts(
         one) when a client is given.
     merge : callable
         List of summaries to one; associative and commutative.
+    in_place : bool
+        ``summarise(batch, into=summary)`` adds a batch to the part's summary so far (None
+        for the first batch) and returns it, instead of a new summary per batch.
     client : distributed.Client, optional
         Run on this cluster: parts are read and summarised on the workers and merged in a tree
         of ``FAN_IN`` summaries per task; only the final summary comes back.
@@ -103,7 +110,7 @@ def reduce_parts(
     if client is None:
         result = None
         for index, part in enumerate(parts.parts):
-            mine = _summarise_part(parts.reader, part, fields, batch_rows, summarise, merge, index)
+            mine = _summarise_part(parts.reader, part, fields, batch_rows, summarise, merge, in_place)
             result = _merge_some(merge, result, mine)
             if progress is not None:
                 progress(index + 1, len(parts.parts))
@@ -112,7 +119,7 @@ def reduce_parts(
 
     level = [
         dask.delayed(_summarise_part, pure=True)(
-            parts.reader, part, fields, batch_rows, summarise, merge, index
+            parts.reader, part, fields, batch_rows, summarise, merge, in_place
         )
         for index, part in enumerate(parts.parts)
     ]

@@ -176,11 +176,11 @@ def _spill_folder(parts: LayerParts) -> str | None:
 # the prepared layer
 
 
-def _batch_then(batch: PointLayer, keys: KeyTable, group_by, weight, setup, then: Callable):
-    """On a worker: decode a batch, code its groups as ``keys`` does, and hand it to ``then``."""
+def _batch_then(batch: PointLayer, keys: KeyTable, group_by, weight, setup, then: Callable, into=None):
+    """On a worker: decode a batch, code its groups as ``keys`` does, and add it with ``then``."""
     decoded = _decode(batch, group_by, weight, setup)
     mapping = _mapping(keys, decoded.keys, batch.label)
-    return then(_points(decoded, mapping[decoded.local_codes], keys.count, setup))
+    return then(_points(decoded, mapping[decoded.local_codes], keys.count, setup), into=into)
 
 
 def _mapping(keys: KeyTable, local: KeyTable, label: str) -> np.ndarray:
@@ -246,17 +246,17 @@ class Prepared:
             mapping = _mapping(self.keys, decoded.keys, batch.label)
             yield _points(decoded, mapping[decoded.local_codes], n, self.setup)
 
-    def reduce(self, summarise: Callable, merge: Callable = _merge_states):
-        """One more pass: ``merge`` of ``summarise(points)`` over every batch (on the cluster, if any).
+    def reduce(self, accumulate: Callable, merge: Callable = _merge_states):
+        """One more pass: every batch added with ``accumulate(points, into=state)`` (None for the
+        first), parts' states merged with ``merge`` (on the cluster, if any).
 
-        ``summarise`` must pickle (a bound method of a plan, or a ``functools.partial``) when
+        ``accumulate`` must pickle (a bound method of a plan, or a ``functools.partial``) when
         the layer was prepared on a cluster.
         """
         if self.client is None:
             result = None
             for points in self.points():
-                mine = summarise(points)
-                result = mine if result is None else merge([result, mine])
+                result = accumulate(points, into=result)
             return result
         then = functools.partial(
             _batch_then,
@@ -264,9 +264,11 @@ class Prepared:
             group_by=self.group_by,
             weight=self.weight,
             setup=self.setup,
-            then=summarise,
+            then=accumulate,
         )
-        return reduce_parts(self.parts, self._fields(), self.batch_rows, then, merge, client=self.client)
+        return reduce_parts(
+            self.parts, self._fields(), self.batch_rows, then, merge, in_place=True, client=self.client
+        )
 
     def close(self) -> None:
         if self.spill is not None:
@@ -340,8 +342,10 @@ def prepare(
         for batch in prefetched(parts.batches(fields, batch_rows)):
             decoded = _decode(batch, group_by, weight, setup)
             running = registry.add(decoded.keys.keys)[decoded.local_codes]
-            if store is not None:
-                store.write(decoded.x, decoded.y, decoded.w, running)
+            if store is not None:  # in group order: later passes then touch one group's bins at a time
+                order = np.argsort(running.astype(np.int32), kind="stable")
+                w = None if decoded.w is None else decoded.w[order]
+                store.write(decoded.x[order], decoded.y[order], w, running[order])
             mine = Survey.of(_points(decoded, running, registry.count, setup))
             survey = (
                 mine if survey is None else recode_survey(survey, _all(survey), registry.count).merge(mine)
