@@ -150,7 +150,7 @@ def job_exact(folder: str, zones: list) -> dict:
         for a in range(0, len(pts), 2000):
             d = cdist(pts[a : a + 2000], pts)
             total += float(wz[a : a + 2000] @ d @ wz)
-        totals[int(z)] = total / 2  # each unordered pair was counted twice
+        totals[str(z)] = total / 2  # each unordered pair was counted twice
     return {"totals": totals}
 
 
@@ -226,7 +226,7 @@ def report(args, folder: Path, read: dict, stream: dict, dask: dict | None, exac
         )
     rows = []
     for zone, exact_total in exact["totals"].items():
-        i = stream["zone"].index(zone)
+        i = [str(z) for z in stream["zone"]].index(zone)
         inside = stream["lower"][i] <= exact_total <= stream["upper"][i]
         error = abs(stream["total"][i] - exact_total) / exact_total
         rows.append(f"zone {zone} ({stream['n_points'][i]:,} points): error {error:.1e}, inside: {inside}")

@@ -324,7 +324,7 @@ def prepare(
     >>> setup = DistanceSetup("planar", "unknown")
     >>> with prepare(layer_parts(frame), group_by=["zone"], weight=None, setup=setup, batch_rows=3) as ready:
     ...     print(ready.survey.count.tolist(), [p.groups.tolist() for p in ready.points()])
-    [2, 2] [[0, 1, 0], [1]]
+    [2, 2] [[0, 0, 1], [1]]
     """
     group_by = tuple(group_by or ())
     fields = [*group_by, *([weight] if weight else [])]
