@@ -18,7 +18,7 @@ import pytest
 import shapely
 from scipy.spatial.distance import pdist
 
-from toolbox import batchkeys, cluster, estimate, grouping
+from toolbox import batchkeys, cluster, estimate, grouping, streaming
 from toolbox.errors import GeometryError, InputError, ParameterError
 from toolbox.estimate import DistanceSetup, Points
 from toolbox.estimate.state import Survey
@@ -335,3 +335,23 @@ def test_bad_input_on_streams_is_one_line_and_writes_nothing(tmp_path, homes, mo
     code, err = _run_cli("point-remoteness", folder, "--batch-rows", "50", "--output", tmp_path / "r.gpkg")
     assert code != 0 and "reads its layer whole" in err
     assert not out.exists() and not (tmp_path / "r.gpkg").exists()
+
+
+def test_refinement_in_several_passes_gives_the_same_totals(monkeypatch):
+    """Memory stays bounded: heavy cells are refined in passes of at most a given size."""
+    frame = _clustered_layer()
+    setup = estimate.distance_setup(frame.crs, "the layer", script="test")
+    results = []
+    for limit in (10**9, 300):  # one refinement pass, then many small ones
+        monkeypatch.setattr(streaming, "REFINE_CELLS_PER_PASS", limit)
+        with prepare(
+            layer_parts(frame), group_by=["zone"], weight="pop", setup=setup, batch_rows=200
+        ) as ready:
+            plan = ready.survey.plan(tolerance=0.01, method="projection")
+            refinement = ready.reduce(plan.accumulate).refinement(plan)
+            results.append(pair_sums(ready, tolerance=0.01, method="projection"))
+    parts = streaming._split(refinement, 300)
+    assert len(parts) > 1 and sum(p.size for p in parts) == refinement.size
+    assert all(p.size <= 300 or p.group.size == 1 for p in parts)
+    np.testing.assert_allclose(results[1].total, results[0].total, rtol=1e-12)
+    np.testing.assert_allclose(results[1].upper, results[0].upper, rtol=1e-12)

@@ -389,7 +389,59 @@ def pair_sums(ready: Prepared, *, tolerance: float, method: str) -> estimate.Gro
     plan = ready.survey.plan(tolerance=tolerance, method=method, names=ready.names())
     state = ready.reduce(plan.accumulate)
     refinement = state.refinement(plan)
-    refined = None
-    if refinement is not None:
-        refined = ready.reduce(functools.partial(refinement.accumulate, plan))
-    return state.finish(plan, refined)
+    if refinement is None:
+        return state.finish(plan)
+    resolved = _Resolved()
+    for part in _split(refinement, REFINE_CELLS_PER_PASS):
+        for group, cells in ready.reduce(functools.partial(part.accumulate, plan)).by_cell().items():
+            resolved.cells.setdefault(group, {}).update(cells)
+    return state.finish(plan, resolved)
+
+
+#: most sub-bins refined in one pass: their state (six float64 each) stays under ~400 MB, and a
+#: refinement larger than that takes several passes, so memory does not grow with the layer
+REFINE_CELLS_PER_PASS = 8_000_000
+
+
+@dataclass
+class _Resolved:
+    """Heavy cells resolved over several refinement passes, as ``State.finish`` takes them."""
+
+    cells: dict = field(default_factory=dict)
+
+    def by_cell(self) -> dict:
+        return self.cells
+
+
+def _split(refinement, limit: int) -> list:
+    """The refinement cut into parts of at most ``limit`` sub-bins (whole cells; a cell larger
+    than the limit is a part of its own)."""
+    sizes = refinement.sub_bins
+    if refinement.size <= limit:
+        return [refinement]
+    parts, start, total = [], 0, 0
+    for end, size in enumerate(sizes.tolist()):
+        if total and total + size > limit:
+            parts.append((start, end))
+            start, total = end, 0
+        total += size
+    parts.append((start, sizes.size))
+    out = []
+    for a, b in parts:
+        sub = sizes[a:b]
+        offset = np.concatenate([[0], np.cumsum(sub)[:-1]]).astype(np.int64)
+        pick = slice(a, b)
+        out.append(
+            replace(
+                refinement,
+                group=refinement.group[pick],
+                direction=refinement.direction[pick],
+                bin=refinement.bin[pick],
+                lo=refinement.lo[pick],
+                hi=refinement.hi[pick],
+                sub_bins=sub,
+                offset=offset,
+                size=int(sub.sum()),
+            )
+        )
+    return out
