@@ -32,20 +32,42 @@ __all__ = [
 
 #: summaries merged per task of the reduction tree
 FAN_IN = 8
+#: tasks per worker thread in a pass on a cluster (each reads several files in turn)
+TASKS_PER_THREAD = 2
 #: seconds to wait for a scheduler to answer
 CONNECT_TIMEOUT = 10
 
 
-def _summarise_part(read, part, fields, batch_rows, summarise, merge, in_place):
-    """One part's summary: each batch summarised, then merged (memory: one batch at a time)."""
-    result = None
-    for batch in read(part, fields, batch_rows):  # messages name the part (its file, its number)
-        if in_place:
-            result = summarise(batch, into=result)
-            continue
-        mine = summarise(batch)
-        result = mine if result is None else merge([result, mine])
+def _summarise_parts(read, parts, fields, batch_rows, summarise, merge, in_place, result=None):
+    """The summary of some parts, batch after batch (memory: one batch and one summary)."""
+    for part in parts:
+        for batch in read(part, fields, batch_rows):  # messages name the part (its file, its number)
+            if in_place:
+                result = summarise(batch, into=result)
+                continue
+            mine = summarise(batch)
+            result = mine if result is None else merge([result, mine])
     return result
+
+
+def _tasks(parts: LayerParts, client) -> list[list]:
+    """Parts grouped into about two tasks per worker thread: fewer partial summaries to send and
+    merge than one per file. A Dask frame's partitions stay one per task (each is computed where
+    its task runs)."""
+    if parts.source == "dask":
+        return [[part] for part in parts.parts]
+    threads = max(1, sum(client.nthreads().values()))
+    count = min(len(parts.parts), TASKS_PER_THREAD * threads)
+    return [list(chunk) for chunk in _chunks(parts.parts, count) if chunk]
+
+
+def _chunks(items, count):
+    size, extra = divmod(len(items), count)
+    start = 0
+    for i in range(count):
+        end = start + size + (1 if i < extra else 0)
+        yield items[start:end]
+        start = end
 
 
 def _merge_some(merge, *summaries):
@@ -82,8 +104,9 @@ def reduce_parts(
         ``summarise(batch, into=summary)`` adds a batch to the part's summary so far (None
         for the first batch) and returns it, instead of a new summary per batch.
     client : distributed.Client, optional
-        Run on this cluster: parts are read and summarised on the workers and merged in a tree
-        of ``FAN_IN`` summaries per task; only the final summary comes back.
+        Run on this cluster: parts are read and summarised on the workers (a few files per
+        task, about ``TASKS_PER_THREAD`` tasks per worker thread) and merged in a tree of
+        ``FAN_IN`` summaries per task; only the final summary comes back.
     progress : callable, optional
         ``progress(done, total)`` in parts, in this process only.
 
@@ -110,18 +133,23 @@ def reduce_parts(
     if client is None:
         result = None
         for index, part in enumerate(parts.parts):
-            mine = _summarise_part(parts.reader, part, fields, batch_rows, summarise, merge, in_place)
-            result = _merge_some(merge, result, mine)
+            if in_place:  # one running summary through every part
+                result = _summarise_parts(
+                    parts.reader, [part], fields, batch_rows, summarise, merge, True, result
+                )
+            else:
+                mine = _summarise_parts(parts.reader, [part], fields, batch_rows, summarise, merge, False)
+                result = _merge_some(merge, result, mine)
             if progress is not None:
                 progress(index + 1, len(parts.parts))
         return result
     import dask
 
     level = [
-        dask.delayed(_summarise_part, pure=True)(
-            parts.reader, part, fields, batch_rows, summarise, merge, in_place
+        dask.delayed(_summarise_parts, pure=True)(
+            parts.reader, task, fields, batch_rows, summarise, merge, in_place
         )
-        for index, part in enumerate(parts.parts)
+        for task in _tasks(parts, client)
     ]
     while len(level) > 1:
         level = [
