@@ -285,6 +285,10 @@ def test_group_spread_on_a_cluster_matches_one_process(local_cluster, tmp_path, 
     frame = pytest.importorskip("dask_geopandas").from_geopandas(homes, npartitions=3)
     framed = toolbox.group_spread(frame, dask_scheduler=address, **common)
     np.testing.assert_allclose(framed["total_dist"], there["total_dist"], rtol=1e-9)
+    # without a scheduler (and no default client) a Dask frame is read here, partition by partition
+    here = toolbox.group_spread(frame, **common)
+    assert here["n_points"].tolist() == whole["n_points"].tolist()
+    assert (here["total_lo"] <= whole["total_hi"]).all() and (whole["total_lo"] <= here["total_hi"]).all()
 
 
 def test_group_spread_streams_with_batch_rows(tmp_path, homes_gpkg, homes, reference):
