@@ -25,7 +25,14 @@ from scipy.spatial.distance import cdist
 
 import toolbox
 from toolbox.errors import ParameterError
-from toolbox.kernels.energy import energy_test, holm_adjust
+from toolbox.estimate import Points
+from toolbox.estimate import energy_test as estimate_energy_test
+from toolbox.kernels.energy import energy_sums, holm_adjust
+
+
+def energy_test(x, y, labels, weights=None, **options):
+    """The estimator's energy test on planar coordinate arrays."""
+    return estimate_energy_test(Points.build(x, y, weights=weights), labels, **options)
 
 
 def _samples(seed, sizes=(30, 25), shift=0.5):
@@ -143,6 +150,9 @@ def test_disco_decomposition_on_a_hand_checked_example():
     assert r.between_mean == pytest.approx(38 / 12)
     projected = energy_test(x, np.zeros(6), labels, tolerance=0.01, method="projection", permutations=99, seed=0)
     assert projected.energy_lo <= 3.0 <= projected.energy_hi
+    # k samples by projection: the same relabellings as exact mode, so the same p-value
+    fine = energy_test(x, np.zeros(6), labels, tolerance=1e-6, method="projection", permutations=99, seed=0)
+    assert fine.p_value == r.p_value and fine.f_ratio == pytest.approx(0.9, rel=1e-5)
 
 
 def test_null_p_values_are_roughly_uniform():
@@ -172,6 +182,16 @@ def test_same_seed_same_relabellings_in_exact_and_projection_mode():
     assert fine.p_value == exact.p_value
     again = energy_test(pts[:, 0], pts[:, 1], labels, tolerance=0.01, permutations=299, seed=4)
     assert again.p_value == energy_test(pts[:, 0], pts[:, 1], labels, tolerance=0.01, permutations=299, seed=4).p_value
+
+
+def test_kernel_returns_raw_sums_of_all_pairs_and_of_each_sample():
+    # brute force with scipy's cdist: Σ_{i<j} d_ij over all points and within each sample
+    (_, _), pts, labels = _samples(9, sizes=(7, 6))
+    d = cdist(pts, pts)
+    raw = energy_sums(pts[:, 0], pts[:, 1], labels, directions=0, permutations=9, seed=0)
+    assert raw.total == pytest.approx(d.sum() / 2, rel=1e-12)
+    for a in (0, 1):
+        assert raw.within[a] == pytest.approx(d[labels == a][:, labels == a].sum() / 2, rel=1e-12)
 
 
 def test_holm_against_the_definition():

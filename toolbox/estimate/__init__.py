@@ -9,6 +9,7 @@ in :mod:`toolbox.estimate.interval`, the local projections of geodesic groups in
 """
 
 from .arrays import cross_pair_sums, exact_pair_sum, grouped_pair_sums, grouped_point_sums, pair_distance_sum
+from .contrast import EnergyTest, energy_test
 from .distance import DISTANCES, DistanceSetup, distance_setup
 from .frames import MAX_RADIUS_DEG, LocalFrame, local_frame
 from .interval import (
@@ -35,6 +36,8 @@ __all__ = [
     "pair_sums",
     "point_sums",
     "cross_sums",
+    "energy_test",
+    "EnergyTest",
     "GroupPairSums",
     "PointSums",
     "CrossPairSums",

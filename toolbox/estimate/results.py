@@ -86,28 +86,13 @@ class PointSums(_Sums):
 
 
 @dataclass(frozen=True)
-class CrossPairSums(_Sums):
-    """G × G cross totals.
+class CrossPairSums(GroupPairSums):
+    """G × G cross totals, with the fields of :class:`GroupPairSums` as matrices.
 
     Off the diagonal, ``total[A, B]`` is ``Σ_{a∈A, b∈B} w_a w_b d_ab`` and ``pair_weight`` is
     ``W_A·W_B``; on the diagonal they are group A's own pair total and pair weight, so ``mean``
     is the group's mean pair distance there. Entries without pairs are NaN.
     """
-
-    n_points: np.ndarray
-    weight_sum: np.ndarray
-    pair_weight: np.ndarray
-    total: np.ndarray
-    lower: np.ndarray
-    upper: np.ndarray
-    rel_bound: np.ndarray
-    exact: np.ndarray
-    directions: np.ndarray
-    note: np.ndarray
-
-    @property
-    def mean(self) -> np.ndarray:
-        return self._mean(self.pair_weight)
 
 
 @dataclass(frozen=True)

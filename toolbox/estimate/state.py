@@ -226,8 +226,12 @@ class Plan:
         bounds = np.vstack([np.full(self.size, np.inf), np.full(self.size, -np.inf)])
         return State(self.key, cells, bounds, np.zeros(self.n_groups), _Gathered.empty(), 0)
 
-    def accumulate(self, points: Points) -> State:
+    def accumulate(self, points: Points, into: State | None = None) -> State:
         """The state of one batch of points (its groups coded as in the survey).
+
+        With ``into`` (a state of this plan that the caller owns), the points are added to it
+        in place and the updated state is returned: a stream of batches then costs no new
+        state, and no merge, per batch.
 
         Examples
         --------
@@ -241,8 +245,15 @@ class Plan:
         w = _weights(points)
         g = points.groups
         gathered = np.isin(g, np.flatnonzero(self.route == ROUTE_GATHER))
-        state = self.empty()
-        state = replace(state, gathered=_Gathered.of(points, gathered), count=points.x.size)
+        state = self.empty() if into is None else into
+        if into is not None and into.key != self.key:
+            raise ParameterError("This state was accumulated with another plan.")
+        kept = _Gathered.of(points, gathered)
+        state = replace(
+            state,
+            gathered=state.gathered.merge(kept) if into is not None else kept,
+            count=state.count + points.x.size,
+        )
         binned = np.flatnonzero(self.route == ROUTE_BINS)
         sel = np.isin(g, binned)
         if not sel.any():
@@ -257,7 +268,7 @@ class Plan:
                 f"A point of group {first} lies outside the extent its survey recorded; survey "
                 "every batch (Survey.of and merge) before planning, and accumulate the same points."
             )
-        state.radius_sum[:] = np.bincount(gs, ws * radius, self.n_groups)
+        state.radius_sum[:] += np.bincount(gs, ws * radius, self.n_groups)
         for m in np.unique(self.directions[binned]):
             members = np.isin(gs, binned[self.directions[binned] == m])
             _accumulate_cells(self, state, px[members], py[members], gs[members], ws[members], int(m))
@@ -474,16 +485,12 @@ def _everywhere():
 
 def _cells(plan: Plan, x, y, groups, m, sub=None):
     """Flat cell index and projected value of every point on every one of the m directions."""
+    from ..kernels.cells import cells_and_positions  # every pass locates points this one way
+
     angles = np.arange(m) * (math.pi / m)
-    cos_t, sin_t = np.cos(angles), np.sin(angles)
-    p = x[None, :] * cos_t[:, None] + y[None, :] * sin_t[:, None]  # (m, n)
-    r = plan.radius[groups]
-    bins = plan.bins[groups]
-    scale = np.divide(bins, 2 * r, out=np.zeros_like(r), where=r > 0)
-    index = np.floor((p + r) * scale).astype(np.int64)
-    np.clip(index, 0, bins - 1, out=index)
-    cell = plan.offset[groups] + np.arange(m)[:, None] * bins + index
-    return cell, p
+    return cells_and_positions(
+        x, y, groups, plan.offset, plan.bins, plan.radius, np.cos(angles), np.sin(angles)
+    )
 
 
 def _accumulate_cells(plan, state, px, py, groups, w, m) -> None:
@@ -492,13 +499,9 @@ def _accumulate_cells(plan, state, px, py, groups, w, m) -> None:
 
 
 def _add_to_cells(cells, bounds, cell, p, w) -> None:
-    size = cells.shape[1]
-    cells[0] += np.bincount(cell, w, size)
-    cells[1] += np.bincount(cell, w * p, size)
-    cells[2] += np.bincount(cell, w * w, size)
-    cells[3] += np.bincount(cell, minlength=size)
-    np.minimum.at(bounds[0], cell, p)
-    np.maximum.at(bounds[1], cell, p)
+    from ..kernels.cells import add_to_cells  # one compiled pass instead of six numpy ones
+
+    add_to_cells(cells, bounds, cell, p, w)
 
 
 @dataclass(frozen=True)
@@ -726,33 +729,37 @@ class Refinement:
         """Per point, the index of the heavy cell it falls in on that cell's direction (-1: none),
         as an (cells-per-point) list of (point index, cell index) pairs."""
         _check_points(plan, points)
+        # heavy cell of every flat cell of the plan (-1: not heavy): one lookup per point and
+        # direction, whatever the number of heavy cells
+        heavy = np.full(plan.size, -1, dtype=np.int64)
+        heavy[plan.offset[self.group] + self.direction * plan.bins[self.group] + self.bin] = np.arange(
+            self.group.size
+        )
         hits_point, hits_cell, values = [], [], []
-        for g in np.unique(self.group):
-            mine = np.flatnonzero(points.groups == g)
-            if mine.size == 0:
-                continue
-            px, py = plan.frame_coordinates(points.x[mine], points.y[mine], points.groups[mine])
-            m = int(plan.directions[g])
-            cell, p = _cells(plan, px, py, np.full(mine.size, g), m)
-            for c in np.flatnonzero(self.group == g):
-                d = int(self.direction[c])
-                flat = plan.offset[g] + d * plan.bins[g] + self.bin[c]
-                inside = np.flatnonzero(cell[d] == flat)
-                hits_point.append(mine[inside])
-                hits_cell.append(np.full(inside.size, c))
-                values.append(p[d, inside])
-        if not hits_point:
+        mine = np.flatnonzero(np.isin(points.groups, self.group))
+        if mine.size == 0:
             return np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0)
+        px, py = plan.frame_coordinates(points.x[mine], points.y[mine], points.groups[mine])
+        g = points.groups[mine]
+        for m in np.unique(plan.directions[np.unique(g)]):
+            same = np.flatnonzero(plan.directions[g] == m)
+            cell, p = _cells(plan, px[same], py[same], g[same], int(m))
+            found = heavy[cell]  # (m, n)
+            d, i = np.nonzero(found >= 0)
+            hits_point.append(mine[same][i])
+            hits_cell.append(found[d, i])
+            values.append(p[d, i])
         return np.concatenate(hits_point), np.concatenate(hits_cell), np.concatenate(values)
 
-    def accumulate(self, plan: Plan, points: Points) -> RefinementState:
-        """Sub-bin sums of the points of one batch that fall in the heavy cells."""
+    def accumulate(self, plan: Plan, points: Points, into: RefinementState | None = None) -> RefinementState:
+        """Sub-bin sums of the points of one batch that fall in the heavy cells (added to
+        ``into`` in place, when given)."""
         index, cell, p = self.select(plan, points)
         w = _weights(points)[index]
         width = self.hi[cell] - self.lo[cell]
         scale = np.divide(self.sub_bins[cell], width, out=np.zeros_like(width), where=width > 0)
         sub = np.clip(np.floor((p - self.lo[cell]) * scale).astype(np.int64), 0, self.sub_bins[cell] - 1)
-        state = RefinementState.empty(self)
+        state = RefinementState.empty(self) if into is None else into
         _add_to_cells(state.cells, state.bounds, self.offset[cell] + sub, p, w)
         return state
 

@@ -219,8 +219,13 @@ class _GeodesicPlan:
             out.note[index_of(g)] = note
 
 
-def _geodesic_layout(points):
-    return GroupLayout.build(points.x, points.y, points.groups, points.n_groups, points.weights, centred=False)
+def _layout(points):
+    """Whether the points are geodesic, and their group layout (planar ones centred per group)."""
+    geodesic = points.distance.kind == "geodesic"
+    lay = GroupLayout.build(
+        points.x, points.y, points.groups, points.n_groups, points.weights, centred=not geodesic
+    )
+    return geodesic, lay
 
 
 # --------------------------------------------------------------------------------------------
@@ -261,10 +266,7 @@ def pair_sums(
     3787.972
     """
     check_method(method, tolerance)
-    geodesic = points.distance.kind == "geodesic"
-    lay = _geodesic_layout(points) if geodesic else GroupLayout.build(
-        points.x, points.y, points.groups, points.n_groups, points.weights
-    )
+    geodesic, lay = _layout(points)
     counts = lay.counts
     pair_weight = lay.pair_weight()
     live = np.flatnonzero((counts >= 2) & (pair_weight > 0))
@@ -307,10 +309,7 @@ def point_sums(
     [7.0, 8.0, 9.0]
     """
     check_method(method, tolerance)
-    geodesic = points.distance.kind == "geodesic"
-    lay = _geodesic_layout(points) if geodesic else GroupLayout.build(
-        points.x, points.y, points.groups, points.n_groups, points.weights
-    )
+    geodesic, lay = _layout(points)
     counts = lay.counts
     other = lay.other_weight()
     # a zero-weight point beside one weighted point still has a distance to it
@@ -426,7 +425,7 @@ def _geodesic_cross(points, tolerance, method, m0, progress, threads) -> CrossPa
                 return _cross_result(within, out)
             use_exact = True
     if use_exact:
-        lay = _geodesic_layout(points)
+        _, lay = _layout(points)
         tick = Ticker(progress, n * (n - 1) // 2)
         out.put_raw(..., kernels.exact_geodesic_cross_raw(lay, a, f, tick))
         return _cross_result(None, out, points)

@@ -13,26 +13,25 @@ labels, so a permutation test only needs the ``P_aa`` of each relabelling.
 By projection, along each of ``m`` directions the points are sorted once; a relabelling then
 costs one O(n) pass per direction (the order does not depend on the labels). The statistic
 computed is the direction-summed one (``Σ_θ S_θ``, a valid statistic in its own right), so the
-permutation p-value is exact for it; its Cauchy–Crofton interval bounds the exact ``S`` (and the
-energy distance) absolutely. Exact mode keeps the n × n distance matrix and forms each
-relabelling's ``P_aa`` as ``½ zᵀ D z`` in blocks. Both modes draw the same relabellings for a
+permutation p-value is exact for it. The kernel returns raw sums; ``toolbox.estimate.contrast``
+turns them into the energy distance and DISCO's components with guaranteed intervals. Exact
+mode keeps the n × n distance matrix and forms each relabelling's ``P_aa`` as ``½ zᵀ D z`` in
+blocks. Both modes draw the same relabellings for a
 seed. See docs/method.md, "Are the samples laid out differently?".
 """
 
 from __future__ import annotations
 
 import functools
-import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
 from ..errors import ParameterError
-from ..estimate.interval import check_method, crofton_interval, projection_factors
 from ._common import BLOCK_ELEMENTS, UNIT_ROUNDOFF, centre, check_points, directions_unit_vectors
 
-__all__ = ["EnergyTest", "energy_test", "holm_adjust", "EXACT_MAX_POINTS", "MAX_PERMUTATIONS"]
+__all__ = ["EnergySums", "energy_sums", "check_permutations", "holm_adjust", "EXACT_MAX_POINTS", "MAX_PERMUTATIONS"]
 
 #: exact mode keeps the n × n distance matrix (8 n² bytes: 200 MB at this size)
 EXACT_MAX_POINTS = 5000
@@ -45,43 +44,27 @@ _RELABEL_BLOCK = 64
 
 
 @dataclass(frozen=True)
-class EnergyTest:
-    """Result of :func:`energy_test`: the statistics with their guaranteed interval and p-value.
+class EnergySums:
+    """Raw sums of :func:`energy_sums` (no interval arithmetic: the estimator layer does that).
 
-    Per-sample arrays have one entry per sample label. Totals are over unordered pairs
-    ``Σ_{i<j} w_i w_j d_ij``. ``energy`` is the energy distance for two samples and, for k
-    samples, DISCO's between component divided by ``Σ_{a<b} W_a W_b / (2N)`` (the pair-size
-    weighted mean of the pairwise energy distances); ``energy_lo``/``energy_hi`` bound the exact
-    value. ``statistic`` is the permutation statistic (``disco_between``).
+    ``total`` and ``within`` (one per sample) are sums over unordered pairs ``Σ_{i<j} w_i w_j``
+    of the summed projections over ``directions`` directions (or of exact distances when
+    ``directions`` is 0); ``slack_total`` and ``slack_within`` bound the rounding of the kernel's
+    own arithmetic, in the same units. ``pair_weight`` is ``Σ_{i<j} w_i w_j`` within each sample.
+    ``p_value`` is the permutation p-value of the statistic computed from these sums.
     """
 
-    n_points: np.ndarray
+    total: float
+    within: np.ndarray
+    counts: np.ndarray
     weight_sum: np.ndarray
-    within_total: np.ndarray
-    within_pair_weight: np.ndarray
-    between_total: float
-    between_pair_weight: float
-    energy: float
-    energy_lo: float
-    energy_hi: float
-    disco_between: float
-    disco_within: float
-    f_ratio: float
+    total_weight: float
+    pair_weight: np.ndarray
+    slack_total: float
+    slack_within: np.ndarray
+    directions: int
     p_value: float
     permutations: int
-    method: str
-    directions: int
-
-    @property
-    def within_mean(self) -> np.ndarray:
-        """Mean distance over pairs of distinct points of each sample (as group-spread reports)."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.within_pair_weight > 0, self.within_total / self.within_pair_weight, np.nan)
-
-    @property
-    def between_mean(self) -> float:
-        """Mean distance over pairs of points from different samples."""
-        return self.between_total / self.between_pair_weight if self.between_pair_weight > 0 else math.nan
 
 
 # --------------------------------------------------------------------------------------------
@@ -316,16 +299,6 @@ def _statistic(f_total, f_within, w_within, weight_total):
 # the test
 
 
-def _cost_exact(n, k):
-    # seconds per relabelling: a (n × n)·(n × k) product (measured: ~0.4 ns per multiply-add)
-    return 0.4e-9 * n * n * k
-
-
-def _cost_projection(n, m):
-    # seconds per relabelling: one pass per direction (measured: ~2 ns per point and direction)
-    return 2e-9 * n * m
-
-
 def _check_labels(labels, units, n_points, n_samples):
     labels = np.asarray(labels)
     if labels.ndim != 1 or (labels.size and not np.issubdtype(labels.dtype, np.integer)):
@@ -362,7 +335,7 @@ def check_permutations(permutations) -> int:
     return int(permutations)
 
 
-def energy_test(
+def energy_sums(
     x,
     y,
     labels,
@@ -370,16 +343,13 @@ def energy_test(
     *,
     units=None,
     n_samples: int | None = None,
-    tolerance: float = 0.01,
-    method: str = "auto",
+    directions: int = 8,
     permutations: int = 999,
     seed=None,
     orders=None,
-    scale_bounds: tuple[float, float] = (1.0, 1.0),
-    pair_slack: float = 0.0,
     progress: Callable[[int, int], None] | None = None,
-) -> EnergyTest:
-    """Energy distance (two samples) or DISCO (k samples) with a permutation p-value.
+) -> EnergySums:
+    """Raw sums and permutation p-value of DISCO's between statistic, exact or by projection.
 
     Parameters
     ----------
@@ -389,46 +359,35 @@ def energy_test(
         Sample code of every unit, in ``[0, n_samples)``; the units are what permutations
         shuffle.
     weights : array_like, optional
-        Non-negative weight of every point, taken as a frequency (a point of weight 3 counts as
-        three points at the same place); ones if omitted.
+        Non-negative weight of every point (a frequency); ones if omitted.
     units : array_like of int, optional
         Unit (index into ``labels``) of every point; default: every point is its own unit.
     n_samples : int, optional
         Number of samples (default ``labels.max() + 1``).
-    tolerance : float
-        Guaranteed relative error of each pair sum, in [0, 0.5]; 0 means exact sums.
-    method : {"auto", "exact", "projection"}
-        ``auto``: exact sums when they are cheaper than the projection (tiny samples only).
+    directions : int
+        Projection directions ``m``; 0 for exact sums (at most ``EXACT_MAX_POINTS`` points).
     permutations : int
-        Number of random relabellings for the p-value, in [1, 1,000,000].
+        Number of random relabellings, in [1, 1,000,000].
     seed : int or numpy.random.SeedSequence, optional
-        Seed of the relabellings; the same seed gives the same p-value in either mode.
+        Seed of the relabellings; the same seed gives the same relabellings in either mode.
     orders : array_like of int, optional
         Explicit relabellings instead of random ones: each row a permutation ``π`` of the units,
         read as a reordered distance matrix is: unit ``π[i]`` takes the label of unit ``i``
         (lets a test replay another program's permutations).
-    scale_bounds : (float, float)
-        ``(k_min, k_max)`` with every pair's planar distance within ``[k_min, k_max]`` times the
-        distance to report (the distortion of a local map projection); folded into the interval.
-    pair_slack : float
-        Absolute error of every planar pair distance (the rounding of projected coordinates).
     progress : callable, optional
         Called as ``progress(done, total)`` in relabellings.
 
     Returns
     -------
-    EnergyTest
+    EnergySums
 
     Examples
     --------
-    >>> import numpy as np
-    >>> x = np.array([0.0, 1.0, 10.0, 11.0])
-    >>> r = energy_test(x, np.zeros(4), [0, 0, 1, 1], tolerance=0, permutations=99, seed=1)
-    >>> round(r.energy, 6), r.method  # 2·10 − 0.5 − 0.5
-    (19.0, 'exact')
+    >>> r = energy_sums([0.0, 1.0, 10.0, 11.0], [0.0] * 4, [0, 0, 1, 1], directions=0, permutations=9, seed=1)
+    >>> float(r.total), r.within.tolist()  # all pairs; each sample's pairs
+    (42.0, [1.0, 1.0])
     """
     x, y, weights = check_points(x, y, weights)
-    m = check_method(method, tolerance)
     labels, units, k = _check_labels(labels, units, x.size, n_samples)
     if orders is None:
         permutations = check_permutations(permutations)
@@ -437,7 +396,7 @@ def energy_test(
         if orders.ndim != 2 or orders.shape[1] != labels.size:
             raise ParameterError(f"orders must have one row of {labels.size} unit indices per relabelling.")
         permutations = orders.shape[0]
-    n = x.size
+    n, m = x.size, int(directions)
     weighted = weights is not None
     w = weights if weighted else np.ones(n)
     point_labels = labels[units]
@@ -445,18 +404,16 @@ def energy_test(
     weight_sum = np.bincount(point_labels, w, minlength=k)
     if k < 2 or (counts < 1).any() or not (weight_sum > 0).all():
         raise ParameterError(
-            f"energy_test needs at least two samples, each with a point of positive weight. Got "
+            f"An energy test needs at least two samples, each with a point of positive weight. Got "
             f"points per sample {counts.tolist()} and weights {weight_sum.tolist()}."
         )
-    exact = m == 0 or (method == "auto" and _cost_exact(n, k) <= _cost_projection(n, m))
-    if exact and n > EXACT_MAX_POINTS:
+    if m == 0 and n > EXACT_MAX_POINTS:
         raise ParameterError(
             f"Exact sums keep the {n:,} × {n:,} distance matrix in memory and are limited to "
-            f"{EXACT_MAX_POINTS:,} points per test; use a tolerance above 0 (e.g. 0.001) for the "
-            "projection estimate, whose interval is reported."
+            f"{EXACT_MAX_POINTS:,} points per test; use the projection estimate for larger tests."
         )
     xc, yc = centre(x, y, np.zeros(n, dtype=np.int64), 1, w if weighted else None)
-    within = _Exact(xc, yc, units, w, k) if exact else _Projected(xc, yc, units, w, weighted, k, m)
+    within = _Exact(xc, yc, units, w, k) if m == 0 else _Projected(xc, yc, units, w, weighted, k, m)
     total_weight = float(w.sum())
     f_total = float(within(np.zeros((labels.size, 1), dtype=labels.dtype))[0][0, 0])
     f_obs, _ = within(labels[:, None])
@@ -478,83 +435,28 @@ def energy_test(
         extreme += int(np.count_nonzero(_statistic(f_total, f_perm, w_perm, total_weight) >= threshold))
         if progress is not None:
             progress(start + size, permutations)
-    return _summarise(
-        f_total, f_obs[0], counts, weight_sum, w, point_labels, xc, yc, exact, m, k,
-        scale_bounds, pair_slack, p_value=(extreme + 1) / (permutations + 1), permutations=permutations,
-    )  # fmt: skip
-
-
-def _summarise(
-    f_total, f_within, counts, weight_sum, w, point_labels, xc, yc, exact, m, k, scale_bounds, pair_slack, **test
-):
-    """Estimates and guaranteed intervals of the observed statistics from the summed sums."""
-    n = xc.size
-    N = float(w.sum())
+    f_within = f_obs[0]
     radius_sum = np.bincount(point_labels, w * np.hypot(xc, yc), minlength=k)
     # rounding allowance of each summed pair sum: the projections and the running sums of the
     # scan (or the matrix products) err by at most (2n + 8)·u·W_a·Σ_a w_i r_i per direction
-    directions = max(m, 1)
-    slack_within = directions * (2 * counts + 8) * UNIT_ROUNDOFF * weight_sum * radius_sum
-    slack_total = directions * (2 * n + 8) * UNIT_ROUNDOFF * N * radius_sum.sum()
-    if exact:  # exact distances: only rounding (each d_ij is within a few u of the true one)
+    slack_within = max(m, 1) * (2 * counts + 8) * UNIT_ROUNDOFF * weight_sum * radius_sum
+    slack_total = max(m, 1) * (2 * n + 8) * UNIT_ROUNDOFF * total_weight * radius_sum.sum()
+    if m == 0:  # exact distances: only rounding (each d_ij is within a few u of the true one)
         slack_within = slack_within + (2 * counts + 8) * UNIT_ROUNDOFF * f_within
         slack_total += (2 * n + 8) * UNIT_ROUNDOFF * f_total
-    # S = P₊ − P₋: cross-sample pairs with weight 1/N, within-sample pairs with (N − W_a)/(N W_a)
-    f_cross = max(f_total - f_within.sum(), 0.0)
-    plus = f_cross / N
-    slack_plus = (slack_total + slack_within.sum() + 4 * UNIT_ROUNDOFF * (f_total + f_within.sum())) / N
-    coeff = (N - weight_sum) / (N * weight_sum)
-    minus = float((f_within * coeff).sum())
-    slack_minus = float((slack_within * coeff).sum()) + 4 * k * UNIT_ROUNDOFF * minus
-    (est_p, lo_p, hi_p), (est_m, lo_m, hi_m) = (
-        _interval(plus, slack_plus, m, exact),
-        _interval(minus, slack_minus, m, exact),
-    )
-    norm = (N * N - float((weight_sum**2).sum())) / (4 * N)  # Σ_{a<b} W_a W_b / (2N)
-    pair_weight = (weight_sum**2 - np.bincount(point_labels, w * w, minlength=k)) / 2
-    scale = 1.0 if exact else projection_factors(m)[2]
-    k_min, k_max = scale_bounds
-    if (k_min, k_max) != (1.0, 1.0) or pair_slack:
-        # planar lengths within pair_slack of [k_min, k_max] times the reported ones (section 6
-        # of docs/method.md): fold both into each part; the estimate takes the middle factor
-        plus_pairs, minus_pairs = 2 * norm, float((pair_weight * coeff).sum())
-        lo_p = max(lo_p - pair_slack * plus_pairs, 0.0) / k_max * (1 - 2 * UNIT_ROUNDOFF)
-        hi_p = (hi_p + pair_slack * plus_pairs) / k_min * (1 + 2 * UNIT_ROUNDOFF)
-        lo_m = max(lo_m - pair_slack * minus_pairs, 0.0) / k_max * (1 - 2 * UNIT_ROUNDOFF)
-        hi_m = (hi_m + pair_slack * minus_pairs) / k_min * (1 + 2 * UNIT_ROUNDOFF)
-        shrink = 2 / (k_min + k_max)
-        est_p, est_m, scale = est_p * shrink, est_m * shrink, scale * shrink
-    between = est_p - est_m
-    lo, hi = lo_p - hi_m, hi_p - lo_m
-    lo, hi = lo - 4 * UNIT_ROUNDOFF * (hi_p + hi_m), hi + 4 * UNIT_ROUNDOFF * (hi_p + hi_m)
-    disco_within = scale * float((f_within / weight_sum).sum())
-    energy, lo, hi = between / norm, max(lo / norm, 0.0), hi / norm
-    f_ratio = (between / (k - 1)) / (disco_within / (N - k)) if N > k and disco_within > 0 else math.nan
-    return EnergyTest(
-        n_points=counts,
+    return EnergySums(
+        total=f_total,
+        within=f_within,
+        counts=counts,
         weight_sum=weight_sum,
-        within_total=scale * f_within,
-        within_pair_weight=pair_weight,
-        between_total=scale * f_cross,
-        between_pair_weight=2 * norm * N,
-        energy=float(min(max(energy, lo), hi)),
-        energy_lo=float(lo),
-        energy_hi=float(hi),
-        disco_between=float(between),
-        disco_within=disco_within,
-        f_ratio=float(f_ratio),
-        method="exact" if exact else "projection",
-        directions=0 if exact else m,
-        **test,
+        total_weight=total_weight,
+        pair_weight=(weight_sum**2 - np.bincount(point_labels, w * w, minlength=k)) / 2,
+        slack_total=float(slack_total),
+        slack_within=slack_within,
+        directions=m,
+        p_value=(extreme + 1) / (permutations + 1),
+        permutations=permutations,
     )
-
-
-def _interval(summed, slack, m, exact):
-    """Estimate and guaranteed bounds of a sum of non-negative pair terms."""
-    if exact:
-        return summed, max(summed - slack, 0.0), summed + slack
-    est, lo, hi, _ = crofton_interval(summed, slack, m)
-    return float(est), float(lo), float(hi)
 
 
 def holm_adjust(p_values) -> np.ndarray:

@@ -280,11 +280,16 @@ def _fixed_points(column) -> tuple[np.ndarray, np.ndarray] | None:
     offsets = np.frombuffer(column.buffers()[1], width)[column.offset : column.offset + len(column) + 1]
     if not (np.diff(offsets) == 21).all():
         return None
-    raw = np.frombuffer(column.buffers()[2], np.uint8)[offsets[0] : offsets[-1]].reshape(-1, 21)
-    if not ((raw[:, 0] == 1).all() and (raw[:, 1:5].copy().view("<u4")[:, 0] == 1).all()):
+    data = column.buffers()[2]
+    raw = np.frombuffer(data, np.uint8)[offsets[0] : offsets[-1]].reshape(-1, 21)
+    n = raw.shape[0]
+
+    def field(dtype, at):  # one field of every 21-byte record, read in place (no copy)
+        return np.ndarray((n,), dtype, buffer=data, offset=int(offsets[0]) + at, strides=(21,))
+
+    if not ((raw[:, 0] == 1).all() and (field("<u4", 1) == 1).all()):
         return None
-    xy = raw[:, 5:].copy().view("<f8")
-    x, y = xy[:, 0].copy(), xy[:, 1].copy()
+    x, y = field("<f8", 5).copy(), field("<f8", 13).copy()
     if (np.isnan(x) & np.isnan(y)).any():  # WKB writes POINT EMPTY as (NaN, NaN)
         return None
     return x, y
@@ -342,4 +347,3 @@ def _finish(attributes, x, y, feature, crs, label) -> PointLayer:
 
         crs = pyproj.CRS.from_user_input(crs)
     return PointLayer(attributes, x, y, np.asarray(feature, dtype=np.int64), crs, label)
-

@@ -5,20 +5,33 @@ from __future__ import annotations
 import pandas as pd
 
 from .. import estimate
+from . import _large
 from ._common import method_column, read_grouped
 
 
 def group_spread(
-    data, *, layer, group_by, weight, tolerance, method, distance, crs, where, engine, progress=None
-) -> pd.DataFrame:
+    data, *, layer, group_by, weight, tolerance, method, distance, crs, where, engine,
+    batch_rows, dask_scheduler, progress=None,
+) -> pd.DataFrame:  # fmt: skip
     """One row per group: its pair-distance total, guaranteed interval and mean."""
-    read = read_grouped(
-        data, layer=layer, group_by=group_by, weight=weight, where=where, engine=engine,
-        distance=distance, crs=crs, script="group-spread",
-    )  # fmt: skip
-    sums = estimate.pair_sums(read.points, tolerance=tolerance, method=method, progress=progress)
+    parts = _large.large_parts(
+        data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler
+    )
+    if parts is not None:  # batch by batch, or partition by partition on a cluster
+        read = _large.pair_sums(
+            parts, group_by=group_by, weight=weight, tolerance=tolerance, method=method, distance=distance,
+            crs=crs, batch_rows=batch_rows, dask_scheduler=dask_scheduler, script="group-spread",
+        )  # fmt: skip
+        sums, keys, units = read.sums, read.keys, read.units
+    else:
+        read = read_grouped(
+            data, layer=layer, group_by=group_by, weight=weight, where=where, engine=engine,
+            distance=distance, crs=crs, script="group-spread",
+        )  # fmt: skip
+        sums = estimate.pair_sums(read.points, tolerance=tolerance, method=method, progress=progress)
+        keys, units = read.groups.keys, read.setup.units
     estimate.raise_for_notes(sums)
-    table = read.groups.keys.copy()
+    table = keys.copy()
     table["n_points"] = sums.n_points
     table["weight_sum"] = sums.weight_sum
     table["pair_weight"] = sums.pair_weight
@@ -29,5 +42,5 @@ def group_spread(
     table["rel_bound"] = sums.rel_bound
     table["method"] = method_column(sums.method)
     table["directions"] = sums.directions
-    table["units"] = read.setup.units
+    table["units"] = units
     return table

@@ -6,14 +6,21 @@ import numpy as np
 
 from .. import estimate, layers
 from ..errors import GeometryError, InputError
+from . import _large
 from ._common import group_points
 
 #: new fields, at most 10 characters so that they survive a Shapefile
 NEW_FIELDS = ("remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n")
 
 
-def point_remoteness(data, *, layer, group_by, weight, tolerance, method, distance, crs, where, engine, progress=None):
+def point_remoteness(
+    data, *, layer, group_by, weight, tolerance, method, distance, crs, where, engine,
+    batch_rows, dask_scheduler, progress=None,
+):  # fmt: skip
     """A copy of the layer with every feature's mean distance to the others of its group."""
+    _large.refuse_per_feature(
+        data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler
+    )
     frame, label = layers.read_layer(data, layer=layer, where=where, engine=engine)
     taken = [f for f in NEW_FIELDS if f in frame.columns]
     if taken:
@@ -28,7 +35,9 @@ def point_remoteness(data, *, layer, group_by, weight, tolerance, method, distan
             f"{int((parts > 1).sum())} MultiPoint feature(s) of {label} have several points, so "
             "they have no single distance to the rest; split them into single points first."
         )
-    setup = estimate.distance_setup(read.crs, read.label, distance=distance, target=crs, script="point-remoteness")
+    setup = estimate.distance_setup(
+        read.crs, read.label, distance=distance, target=crs, script="point-remoteness"
+    )
     grouped = group_points(read, group_by, weight, setup)
     points, n_groups = grouped.points, grouped.groups.count
     sums = estimate.point_sums(points, tolerance=tolerance, method=method, progress=progress)

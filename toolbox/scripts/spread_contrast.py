@@ -8,17 +8,17 @@ import numpy as np
 import pandas as pd
 
 from .. import estimate, grouping, layers
-from ..errors import ParameterError
-from ..estimate.interval import forward_slack
-from ..kernels.energy import check_permutations, energy_test, holm_adjust
+from ..errors import InputError, ParameterError
+from ..kernels.energy import check_permutations, holm_adjust
 
 _SAMPLE = "__sample__"
 
 
 def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine):
-    """Read → distance set-up → test groups → weights: points, per-feature sample values, codes.
+    """Read → the estimator's distance set-up → test groups → weights (features as frequencies).
 
-    The one place that touches reading and set-up (to move onto the estimator layer).
+    Returns the points (in the set-up's frame: planar, or longitude and latitude), the feature
+    of every point, its weight, the sample value of every feature and the test groups.
     """
     fields = [*group_by, *([compare] if compare else []), *([weight] if weight else [])]
     first = layers.read_points(data, layer=layer, fields=fields, where=where, engine=engine)
@@ -30,35 +30,18 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
         parts = [(first, weight, names[0]), (second, to_weight, names[1])]
     xs, ys, features, attrs, w = [], [], [], [], []
     for points, field, name in parts:
-        x, y = setup.coordinates(points.x, points.y, points.crs, points.label, note=crs is None and name is not None)
         weights = grouping.feature_weights(points.attributes, field, points.label)
-        xs.append(x), ys.append(y), features.append(points.feature + sum(len(a) for a in attrs))
-        w.append(np.ones(x.size) if weights is None else weights[points.feature])
+        one = estimate.Points.from_layer(setup, points.x, points.y, points.crs, points.label, None, 1,
+                                         None if weights is None else weights[points.feature],
+                                         note=crs is None and name is not None)  # fmt: skip
+        xs.append(one.x), ys.append(one.y), features.append(points.feature + sum(len(a) for a in attrs))
+        w.append(np.ones(one.x.size) if weights is None else one.weights)
         attrs.append(points.attributes.assign(**{_SAMPLE: name}) if name is not None else points.attributes)
     table = pd.concat(attrs, ignore_index=True)
     groups = grouping.group_features(table, group_by)
     values = table[_SAMPLE if to is not None else compare]
     return (np.concatenate(xs), np.concatenate(ys), np.concatenate(features), np.concatenate(w),
             values, groups, setup)  # fmt: skip
-
-
-def _frame(setup):
-    """Planar coordinates of one test's points, the energy_test arguments they need, or a note.
-
-    Geodesic layers: an azimuthal equidistant projection centred on the test's points, whose
-    distortion (and coordinate rounding) goes into the interval, as for the other scripts.
-    """
-    if setup.kind == "planar":
-        return lambda x, y: (x, y, {}, None)
-
-    def local(lon, lat):
-        frame = estimate.local_frame(lon, lat, setup.a, setup.f)
-        if not frame.usable:
-            return lon, lat, {}, f"the group {frame.reason}: too wide for one local projection; pass --crs"
-        slack = float(forward_slack(setup.a, 1.0))  # per unit of pair weight
-        return frame.x, frame.y, {"scale_bounds": (frame.k_min, frame.k_max), "pair_slack": slack}, None
-
-    return local
 
 
 def spread_contrast(
@@ -77,12 +60,6 @@ def spread_contrast(
     x, y, feature, w, values, groups, setup = _setup(
         data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine
     )
-    frame = _frame(setup)
-    if setup.kind == "geodesic" and (tolerance == 0 or method == "exact"):
-        raise ParameterError(
-            "Exact sums (--tolerance 0 or --method exact) are planar only; for geodesic distances use a "
-            "tolerance above 0 (the interval then includes the local projection), or pass --crs."
-        )
     if values.isna().any():
         warnings.warn(f"{int(values.isna().sum())} feature(s) without a value in {compare!r} are left out.", UserWarning, stacklevel=2)
     seed = int(np.random.SeedSequence(seed).entropy % 2**63) if seed is None else int(seed)
@@ -99,13 +76,17 @@ def spread_contrast(
         row = {"samples": " | ".join(names), "n_samples": len(names), "n_points": at.size}
         row["sizes"] = " | ".join(str(c) for c in sizes)
         row["note"] = _problem(names, sizes, np.bincount(labels[unit_of[feature[at]]], w[at], len(names)), compare or "the layers")
-        px, py, extra, note = frame(x[at], y[at])
-        row["note"] = row["note"] or note
         if row["note"] is None:
-            done = code * permutations
-            r = energy_test(px, py, labels, w[at] if weight or to_weight else None, units=unit_of[feature[at]],
-                            tolerance=tolerance, method="projection" if extra else method, permutations=permutations, seed=streams[code], **extra,
-                            progress=None if progress is None else lambda i, _, d=done: progress(d + i, groups.count * permutations))  # fmt: skip
+            done, weighted = code * permutations, bool(weight or to_weight)
+            points = estimate.Points.build(x[at], y[at], weights=w[at] if weighted else None, distance=setup)
+            try:
+                r = estimate.energy_test(points, labels, units=unit_of[feature[at]], tolerance=tolerance, method=method,
+                                         permutations=permutations, seed=streams[code],
+                                         progress=None if progress is None else lambda i, _, d=done: progress(d + i, groups.count * permutations))  # fmt: skip
+            except InputError as exc:  # this group cannot be tested (e.g. too wide): a note, not an error
+                row["note"] = str(exc)
+                rows.append(row)
+                continue
             row.update(within_means=" | ".join(f"{v:.6g}" for v in r.within_mean), between_mean=r.between_mean,
                        energy=r.energy, energy_lo=r.energy_lo, energy_hi=r.energy_hi, disco_between=r.disco_between,
                        disco_within=r.disco_within, f_ratio=r.f_ratio, p_value=r.p_value, method=r.method,

@@ -1,0 +1,296 @@
+"""Benchmark of streaming and Dask runs of ``group-spread`` on a dataset larger than comfortable memory.
+
+Issue 14 asks that ``group-spread`` on a GeoParquet dataset of 100,000,000 points in 1,000 groups,
+streamed on this 2-core machine, peak at most 3 GiB of resident memory and take at most twice
+as long as just reading the same files' coordinates with pyarrow; and that the same job run on
+a ``distributed.LocalCluster`` of 2 workers. Every job runs in its own process, so each peak
+resident size (``ru_maxrss``) is that job's alone; the ratios are measured in one run of this
+script. Machines are noisy: the load average is printed beside the figures.
+
+The data are invented (``bench/scale_data.py``): written once under ``bench/data/`` (about
+3 GB for 1e8 points), in chunks, and reused.
+
+Run from the repository root::
+
+    python bench/bench_scale.py                       # 1e8 points, 1,000 groups, 100 files
+    python bench/bench_scale.py --points 2e6 --files 4 --output -     # a quick look, printed only
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+from datetime import UTC, datetime
+from pathlib import Path
+
+BENCH_DIR = Path(__file__).resolve().parent
+sys.path.insert(0, str(BENCH_DIR))
+
+import scale_data  # noqa: E402
+
+RESULTS = BENCH_DIR / "results.md"
+BEGIN, END = "<!-- bench_scale: begin -->", "<!-- bench_scale: end -->"
+TOLERANCE = 0.01
+BATCH_ROWS = 1 << 20
+RSS_TARGET = 3 * 2**30
+WALL_TARGET = 2.0
+#: groups checked against exact sums, and the size they are picked near (exact sums are O(n²))
+CHECKED_GROUPS = 4
+EXACT_SIZE = 20_000
+
+
+def _peak_rss() -> int:
+    """This process's peak resident size in bytes (Linux reports kilobytes)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+# ----------------------------------------------------------------------------------------------
+# jobs, each run in a fresh process
+
+
+def job_read(folder: str) -> dict:
+    """The floor: read every file's geometry column with pyarrow and take x, y out of the WKB."""
+    import numpy as np
+    import pyarrow.parquet as pq
+
+    start = time.perf_counter()
+    points, checksum = 0, 0.0
+    for path in sorted(Path(folder).glob("*.parquet")):
+        for batch in pq.ParquetFile(path).iter_batches(batch_size=BATCH_ROWS, columns=["geometry"]):
+            column = batch.column(0)
+            raw = np.frombuffer(column.buffers()[2], np.uint8)[: 21 * len(column)].reshape(-1, 21)
+            xy = raw[:, 5:].copy().view("<f8")
+            points += xy.shape[0]
+            checksum += float(xy[:, 0].sum())
+    return {"wall": time.perf_counter() - start, "points": points, "checksum": checksum}
+
+
+def _result_summary(table) -> dict:
+    import numpy as np
+
+    return {
+        "groups": len(table),
+        "points": int(table["n_points"].sum()),
+        "total": table["total_dist"].to_numpy(dtype=float).tolist(),
+        "lower": table["total_lo"].to_numpy(dtype=float).tolist(),
+        "upper": table["total_hi"].to_numpy(dtype=float).tolist(),
+        "zone": table["zone"].to_numpy().tolist(),
+        "n_points": table["n_points"].to_numpy().tolist(),
+        "max_rel_bound": float(np.nanmax(table["rel_bound"].to_numpy(dtype=float))),
+        "methods": table["method"].value_counts().to_dict(),
+    }
+
+
+def job_stream(folder: str) -> dict:
+    """group-spread streamed in batches of BATCH_ROWS features, in this process."""
+    import toolbox
+
+    start = time.perf_counter()
+    table = toolbox.group_spread(
+        folder, group_by="zone", weight="residents", tolerance=TOLERANCE, batch_rows=BATCH_ROWS
+    )
+    return {"wall": time.perf_counter() - start, **_result_summary(table)}
+
+
+def job_dask(folder: str) -> dict:
+    """The same job on a LocalCluster of 2 single-threaded worker processes."""
+    from distributed import LocalCluster
+
+    import toolbox
+
+    start = time.perf_counter()
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        up = time.perf_counter() - start
+        table = toolbox.group_spread(
+            folder,
+            group_by="zone",
+            weight="residents",
+            tolerance=TOLERANCE,
+            batch_rows=BATCH_ROWS,
+            dask_scheduler=cluster.scheduler_address,
+        )
+        from distributed import Client
+
+        with Client(cluster.scheduler_address, set_as_default=False) as client:
+            workers = client.run(_peak_rss)
+    wall = time.perf_counter() - start
+    return {
+        "wall": wall,
+        "cluster_start": up,
+        "workers_rss": sorted(workers.values()),
+        **_result_summary(table),
+    }
+
+
+def job_exact(folder: str, zones: list) -> dict:
+    """Exact weighted totals of a few groups (read with a filter, summed with scipy's cdist)."""
+    import numpy as np
+    import pyarrow.dataset as pads
+    from scipy.spatial.distance import cdist
+
+    table = pads.dataset(folder, format="parquet").to_table(
+        columns=["zone", "residents", "geometry"], filter=pads.field("zone").isin(zones)
+    )
+    column = table.column("geometry").combine_chunks()
+    raw = np.frombuffer(column.buffers()[2], np.uint8)[: 21 * len(column)].reshape(-1, 21)
+    xy = raw[:, 5:].copy().view("<f8").reshape(-1, 2)
+    zone = table.column("zone").to_numpy()
+    w = table.column("residents").to_numpy()
+    totals = {}
+    for z in zones:
+        pts, wz = xy[zone == z], w[zone == z]
+        pts = pts - pts.mean(axis=0)
+        total = 0.0
+        for a in range(0, len(pts), 2000):
+            d = cdist(pts[a : a + 2000], pts)
+            total += float(wz[a : a + 2000] @ d @ wz)
+        totals[str(z)] = total / 2  # each unordered pair was counted twice
+    return {"totals": totals}
+
+
+JOBS = {"read": job_read, "stream": job_stream, "dask": job_dask}
+
+
+def run_job(name: str, folder: Path, *extra: str) -> dict:
+    """Run one job in a fresh interpreter; its JSON result plus its own peak RSS."""
+    command = [sys.executable, __file__, "--job", name, "--data", str(folder), *extra]
+    done = subprocess.run(command, capture_output=True, text=True, check=False)
+    if done.returncode != 0:
+        raise SystemExit(f"job {name} failed:\n{done.stderr[-3000:]}")
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+# ----------------------------------------------------------------------------------------------
+# the report
+
+
+def _gib(value: float) -> str:
+    return f"{value / 2**30:.2f} GiB"
+
+
+def _load() -> str:
+    return " / ".join(f"{v:.2f}" for v in os.getloadavg())
+
+
+def report(args, folder: Path, read: dict, stream: dict, dask: dict | None, exact: dict) -> list[str]:
+    import numpy as np
+
+    lines = [
+        BEGIN,
+        "## Streaming and Dask: `bench_scale.py`",
+        "",
+        f"- date: {datetime.now(UTC).isoformat(timespec='seconds')}; {os.cpu_count()} cores; "
+        f"{platform.platform()}; Python {platform.python_version()}",
+        f"- load average (1 / 5 / 15 min) at the start: {args.load_start}; at the end: {_load()}. "
+        "The machine was shared with other sessions' work while this ran, so the times are those "
+        "of a busy machine.",
+        f"- data: {stream['points']:,} points in {stream['groups']:,} groups, {args.files} GeoParquet "
+        f"files (WKB points, snappy) under `bench/data/`; tolerance {TOLERANCE}, weight `residents`, "
+        f"batches of {BATCH_ROWS:,} features. Every job ran once, in its own process.",
+        "",
+        "| job | wall | ratio to the read floor | peak RSS | target |",
+        "| --- | --- | --- | --- | --- |",
+        f"| read the coordinates with pyarrow (floor) | {read['wall']:.1f} s | 1× | {_gib(read['rss'])} | |",
+        f"| group-spread, streamed in this process | {stream['wall']:.1f} s | "
+        f"{stream['wall'] / read['wall']:.2f}× | {_gib(stream['rss'])} | "
+        f"≤ {WALL_TARGET:g}× and ≤ {_gib(RSS_TARGET)}: "
+        f"{'met' if stream['wall'] <= WALL_TARGET * read['wall'] and stream['rss'] <= RSS_TARGET else 'NOT met'} |",
+    ]
+    if dask is not None:
+        workers = ", ".join(_gib(v) for v in dask["workers_rss"])
+        lines.append(
+            f"| group-spread on a LocalCluster of 2 workers | {dask['wall']:.1f} s (of which "
+            f"{dask['cluster_start']:.1f} s starting the cluster) | {dask['wall'] / read['wall']:.2f}× | "
+            f"client {_gib(dask['rss'])}; workers {workers} | |"
+        )
+    lines += [""]
+    total = np.asarray(stream["total"])
+    bound = stream["max_rel_bound"]
+    lines.append(f"Streamed result: largest rel_bound {bound:.2e}; methods {stream['methods']}.")
+    if dask is not None:
+        other = np.asarray(dask["total"])
+        lo = np.maximum(np.asarray(stream["lower"]), np.asarray(dask["lower"]))
+        hi = np.minimum(np.asarray(stream["upper"]), np.asarray(dask["upper"]))
+        diff = np.nanmax(np.abs(other - total) / np.abs(total))
+        lines.append(
+            f"Dask against streamed: same groups and counts: "
+            f"{dask['zone'] == stream['zone'] and dask['n_points'] == stream['n_points']}; largest "
+            f"relative difference of the totals {diff:.1e}; intervals overlap for every group: "
+            f"{bool(np.all(lo <= hi))}."
+        )
+    rows = []
+    for zone, exact_total in exact["totals"].items():
+        i = [str(z) for z in stream["zone"]].index(zone)
+        inside = stream["lower"][i] <= exact_total <= stream["upper"][i]
+        error = abs(stream["total"][i] - exact_total) / exact_total
+        rows.append(f"zone {zone} ({stream['n_points'][i]:,} points): error {error:.1e}, inside: {inside}")
+    lines.append(
+        "Against exact sums (scipy cdist; the smallest group and those nearest 20,000 points): "
+        + "; ".join(rows)
+        + "."
+    )
+    lines += ["", END]
+    return lines
+
+
+def write_section(lines: list[str], output: Path) -> None:
+    """Put the section into ``output``, replacing an earlier one and keeping everything else."""
+    text = output.read_text(encoding="utf-8") if output.exists() else ""
+    section = "\n".join(lines)
+    if BEGIN in text and END in text:
+        head, rest = text.split(BEGIN, 1)
+        text = head + section + rest.split(END, 1)[1]
+    else:
+        text = text.rstrip() + "\n\n" + section + "\n"
+    output.write_text(text, encoding="utf-8")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--points", type=float, default=1e8)
+    parser.add_argument("--groups", type=int, default=1000)
+    parser.add_argument("--files", type=int, default=100)
+    parser.add_argument("--no-dask", action="store_true", help="skip the LocalCluster run")
+    parser.add_argument("--output", default=str(RESULTS), help="file for the section; - prints only")
+    parser.add_argument("--job", choices=[*JOBS, "exact"], help=argparse.SUPPRESS)
+    parser.add_argument("--data", help=argparse.SUPPRESS)
+    parser.add_argument("--zones", help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.job:
+        if args.job == "exact":
+            result = job_exact(args.data, json.loads(args.zones))
+        else:
+            result = JOBS[args.job](args.data)
+        result["rss"] = _peak_rss()
+        print(json.dumps(result))
+        return
+    args.load_start = _load()
+    folder = scale_data.make_dataset(int(args.points), args.groups, args.files)
+    print(f"data: {folder}", flush=True)
+    read = run_job("read", folder)
+    print(f"read floor: {read['wall']:.1f} s, peak RSS {_gib(read['rss'])}", flush=True)
+    stream = run_job("stream", folder)
+    print(f"streamed: {stream['wall']:.1f} s, peak RSS {_gib(stream['rss'])}", flush=True)
+    dask = None
+    if not args.no_dask:
+        dask = run_job("dask", folder)
+        print(f"LocalCluster: {dask['wall']:.1f} s, client peak RSS {_gib(dask['rss'])}", flush=True)
+    # the smallest group and the ones nearest EXACT_SIZE points (large enough to be projected)
+    sizes = stream["n_points"]
+    near = sorted(range(len(sizes)), key=lambda i: abs(sizes[i] - EXACT_SIZE))[: CHECKED_GROUPS - 1]
+    checked = sorted({min(range(len(sizes)), key=sizes.__getitem__), *near})
+    exact = run_job("exact", folder, "--zones", json.dumps([stream["zone"][i] for i in checked]))
+    lines = report(args, folder, read, stream, dask, exact)
+    print("\n".join(lines))
+    if args.output != "-":
+        write_section(lines, Path(args.output))
+
+
+if __name__ == "__main__":
+    main()

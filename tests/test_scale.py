@@ -1,0 +1,355 @@
+"""Layers read in parts and batches, group keys merged across them, passes on a Dask cluster.
+
+References: the batches must reproduce what ``geopandas`` reads (``geopandas.read_file`` and
+``geopandas.read_parquet``); group codes must be those :func:`toolbox.grouping.group_features`
+gives on the whole layer (pandas' ``groupby``). The cluster tests start a
+``distributed.LocalCluster`` of two worker processes and close it; nothing is timed.
+"""
+
+from __future__ import annotations
+
+import os
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pyproj
+import pytest
+import shapely
+from scipy.spatial.distance import pdist
+
+from toolbox import batchkeys, cluster, estimate, grouping, streaming
+from toolbox.errors import GeometryError, InputError, ParameterError
+from toolbox.estimate import DistanceSetup, Points
+from toolbox.estimate.state import Survey
+from toolbox.layers.stream import layer_parts
+from toolbox.streaming import pair_sums, prepare
+
+PLANAR = DistanceSetup("planar", "metre")
+
+
+def _coordinates(frame: gpd.GeoDataFrame) -> np.ndarray:
+    return shapely.get_coordinates(np.asarray(frame.geometry.values))
+
+
+def _write_parts(frame: gpd.GeoDataFrame, folder, pieces: int) -> None:
+    folder.mkdir()
+    for i, part in enumerate(np.array_split(np.arange(len(frame)), pieces)):
+        frame.iloc[part].to_parquet(folder / f"part-{i}.parquet")
+
+
+@pytest.mark.parametrize("batch_rows", [1, 7, 50, 10_000])
+def test_ogr_batches_cover_the_layer_in_order(homes_file, homes, batch_rows):
+    parts = layer_parts(homes_file.path, **homes_file.kwargs)
+    batches = list(parts.batches(["zone", "pop"], batch_rows=batch_rows))
+    assert all(len(b.attributes) <= batch_rows for b in batches)
+    expected = gpd.read_file(homes_file.path, **homes_file.kwargs)  # the reference reader
+    xy = np.concatenate([np.column_stack([b.x, b.y]) for b in batches])
+    np.testing.assert_array_equal(xy, _coordinates(expected))
+    pop = np.concatenate([b.attributes["pop"].to_numpy() for b in batches])
+    np.testing.assert_array_equal(pop, expected["pop"].to_numpy())
+    assert parts.rows == len(homes) and parts.crs.to_epsg() == 32705
+
+
+def test_parquet_folder_has_one_part_per_file(tmp_path, homes):
+    _write_parts(homes, tmp_path / "homes", 3)
+    parts = layer_parts(tmp_path / "homes")
+    assert len(parts.parts) == 3 and parts.on_workers and parts.rows == len(homes)
+    batches = list(parts.batches(["zone"], batch_rows=40))
+    xy = np.concatenate([np.column_stack([b.x, b.y]) for b in batches])
+    np.testing.assert_array_equal(xy, _coordinates(gpd.read_parquet(tmp_path / "homes")))
+    assert "part-2.parquet" in batches[-1].label  # messages name the file
+
+
+def test_key_tables_merge_to_the_whole_layers_groups(homes):
+    rng = np.random.default_rng(7)
+    whole = grouping.group_features(homes, ["zone", "tenure"])  # pandas' groupby: the reference
+    cuts = np.sort(rng.choice(np.arange(1, len(homes)), 9, replace=False))
+    pieces = np.split(rng.permutation(len(homes)), cuts)
+    tables = [batchkeys.key_table(homes.iloc[p], ["zone", "tenure"]) for p in pieces]
+    merged = batchkeys.merge_key_tables(tables[::-1])
+    pd.testing.assert_frame_equal(
+        merged.keys.astype(object), whole.keys.astype(object), check_column_type=False
+    )
+    np.testing.assert_array_equal(merged.codes(homes), whole.codes)
+    registry = batchkeys.KeyRegistry(("zone", "tenure"))
+    running = [registry.add(t.keys)[t.codes(homes.iloc[p])] for t, p in zip(tables, pieces, strict=True)]
+    table, order = registry.table()
+    pd.testing.assert_frame_equal(
+        table.keys.astype(object), whole.keys.astype(object), check_column_type=False
+    )
+    for codes, p in zip(running, pieces, strict=True):
+        np.testing.assert_array_equal(order[codes], whole.codes[p])
+
+
+@pytest.mark.parametrize("spill", [True, False])
+def test_prepared_batches_replay_the_layer(homes_gpkg, homes, spill):
+    parts = layer_parts(homes_gpkg.path, **homes_gpkg.kwargs)
+    whole = grouping.group_features(homes, ["zone"])
+    with prepare(parts, group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=33, spill=spill) as ready:
+        assert (ready.spill is not None) == spill
+        folder = ready.spill.folder if spill else None
+        replay = list(ready.points())
+        survey = ready.survey
+    x, y, w, codes = (
+        np.concatenate([getattr(p, k) for p in replay]) for k in ("x", "y", "weights", "groups")
+    )
+    xy = _coordinates(homes)
+    pop = homes["pop"].to_numpy(dtype=float)
+    # the same points with the same weights and groups (the spill keeps each batch in group order)
+    replayed = np.column_stack([codes, x, y, w])
+    expected = np.column_stack([whole.codes, xy, pop])
+    np.testing.assert_array_equal(
+        replayed[np.lexsort(replayed.T[::-1])], expected[np.lexsort(expected.T[::-1])]
+    )
+    w = pop
+    # the survey of the whole layer at once (the estimator's own), against the merged one
+    whole_survey = Survey.of(Points.build(xy[:, 0], xy[:, 1], whole.codes, whole.count, w))
+    np.testing.assert_array_equal(survey.count, whole_survey.count)
+    np.testing.assert_array_equal(survey.lo, whole_survey.lo)
+    np.testing.assert_allclose(survey.pair_weight, whole_survey.pair_weight, rtol=1e-12)
+    np.testing.assert_allclose(survey.sums, whole_survey.sums, rtol=1e-12)
+    if spill:  # closed with the block: the spill is gone
+        assert ready.spill is None and not os.path.exists(folder)
+
+
+def test_bad_weights_and_geometries_stop_pass_one(tmp_path, homes):
+    bad = homes.copy()
+    bad.loc[bad.index[150], "pop"] = -1
+    with pytest.raises(InputError, match="negative weight in 'pop'"):
+        prepare(layer_parts(bad), group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=50)
+    folder = tmp_path / "holes"
+    _write_parts(homes, folder, 3)
+    holed = homes.iloc[:10].copy()
+    holed.loc[holed.index[3], "geometry"] = None
+    holed.to_parquet(folder / "part-1.parquet")
+    with pytest.raises(GeometryError, match=r"file '.*part-1\.parquet'.* have no geometry"):
+        prepare(layer_parts(folder), group_by=["zone"], weight=None, setup=PLANAR, batch_rows=50)
+
+
+def test_layers_only_this_process_reads_are_refused_on_a_cluster(homes):
+    with pytest.raises(ParameterError, match="Only this process can read the GeoDataFrame"):
+        cluster.reduce_parts(layer_parts(homes), [], 10, len, sum, client=object())
+    with pytest.raises(ParameterError, match="fiona engine"):
+        layer_parts("anything.gpkg", engine="fiona")
+
+
+def test_a_scheduler_that_does_not_answer_is_one_clear_error(monkeypatch):
+    pytest.importorskip("distributed")
+    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1)
+    with pytest.raises(InputError, match=r"No Dask scheduler answered at 'tcp://127\.0\.0\.1:9'"):
+        with cluster.connected("tcp://127.0.0.1:9"):
+            pass
+
+
+# --------------------------------------------------------------------------------------------
+# a LocalCluster of two worker processes, shared by the tests that need one
+
+
+@pytest.fixture(scope="module")
+def local_cluster():
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, memory_limit="1GiB"
+    ) as running:
+        with distributed.Client(running, set_as_default=False) as client:
+            yield client
+
+
+# --------------------------------------------------------------------------------------------
+# streamed sums against exact totals
+
+
+GEOD = pyproj.Geod(ellps="WGS84")  # Karney's algorithm, accurate to round-off: the reference
+
+
+def _exact_totals(frame: gpd.GeoDataFrame, codes: np.ndarray, n_groups: int, weights, geodesic: bool):
+    """Σ_{i<j} w_i w_j d_ij per group by brute force: scipy's pdist, or pyproj.Geod.inv."""
+    xy = _coordinates(frame)
+    w = np.ones(len(xy)) if weights is None else weights
+    out = np.full(n_groups, np.nan)
+    for g in range(n_groups):
+        members = np.flatnonzero(codes == g)
+        if members.size < 2:
+            continue
+        i, j = np.triu_indices(members.size, k=1)
+        if geodesic:
+            a, b = xy[members[i]], xy[members[j]]
+            d = GEOD.inv(a[:, 0], a[:, 1], b[:, 0], b[:, 1])[2]
+        else:
+            d = pdist(xy[members])  # condensed order: the upper triangle row by row, as i, j
+        out[g] = float(np.dot(w[members[i]] * w[members[j]], d))
+    return out
+
+
+def _clustered_layer() -> gpd.GeoDataFrame:
+    """A dense village (σ = 2 m), a second one 3 km away, one farm 40 km off: heavy bins."""
+    rng = np.random.default_rng(11)
+    x = np.concatenate([rng.normal(0, 2, 600), 3000 + rng.normal(0, 50, 300), [40_000.0]])
+    y = np.concatenate([rng.normal(0, 2, 600), rng.normal(0, 50, 300), [5_000.0]])
+    zone = np.where(np.arange(x.size) % 3 == 0, "north", "south")
+    frame = gpd.GeoDataFrame(
+        {"zone": zone, "pop": rng.integers(1, 6, x.size).astype(float)},
+        geometry=shapely.points(500_000 + x, 6_120_000 + y),
+        crs="EPSG:32705",
+    )
+    return frame.iloc[rng.permutation(len(frame))].reset_index(drop=True)
+
+
+@pytest.mark.parametrize("layout", ["homes", "clustered"])
+@pytest.mark.parametrize("distance", ["planar", "geodesic"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_streamed_intervals_contain_the_exact_total(homes, layout, distance, weighted):
+    frame = homes.dropna(subset=["zone"]) if layout == "homes" else _clustered_layer()
+    frame = frame.reset_index(drop=True)
+    if distance == "geodesic":
+        frame = frame.to_crs("EPSG:4326")
+    weight = "pop" if weighted else None
+    setup = estimate.distance_setup(frame.crs, "the layer", distance=distance, script="test")
+    whole = grouping.group_features(frame, ["zone"])
+    weights = frame["pop"].to_numpy(dtype=float) if weighted else None
+    truth = _exact_totals(frame, whole.codes, whole.count, weights, distance == "geodesic")
+    totals = []
+    for pieces in (1, 2, 7, 50):
+        rows = -(-len(frame) // pieces)
+        for method in ("projection", "auto") if pieces == 7 else ("projection",):
+            with prepare(
+                layer_parts(frame), group_by=["zone"], weight=weight, setup=setup, batch_rows=rows
+            ) as ready:
+                sums = pair_sums(ready, tolerance=0.01, method=method)
+            live = ~np.isnan(truth)
+            assert np.all(sums.lower[live] <= truth[live]) and np.all(truth[live] <= sums.upper[live]), (
+                pieces,
+                method,
+            )
+            assert np.all(sums.rel_bound[live] <= 0.01)
+            if method == "projection":
+                totals.append(sums.total)
+    # the same points cut differently give the same state, up to the order of additions (for
+    # geodesic groups the frame's centre is itself such a sum, so the projection moves a little)
+    for other in totals[1:]:
+        np.testing.assert_allclose(other, totals[0], rtol=1e-9 if distance == "planar" else 1e-6)
+
+
+# --------------------------------------------------------------------------------------------
+# the scripts: streamed, on a cluster, and bad input
+
+
+def _run_cli(*args) -> tuple[int, str]:
+    import contextlib
+    import io
+
+    from toolbox.cli import main
+
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err):
+        code = main([str(a) for a in args])
+    return code, err.getvalue()
+
+
+def test_group_spread_on_a_cluster_matches_one_process(local_cluster, tmp_path, homes, reference):
+    import toolbox
+
+    _write_parts(homes, tmp_path / "homes", 4)
+    address = local_cluster.scheduler.address
+    common = dict(group_by="zone", weight="pop", tolerance=0.01)
+    whole = toolbox.group_spread(tmp_path / "homes", **common)  # read whole, auto
+    there = toolbox.group_spread(tmp_path / "homes", dask_scheduler=address, **common)
+    streamed = toolbox.group_spread(tmp_path / "homes", batch_rows=40, method="projection", **common)
+    for column in ("zone", "n_points", "weight_sum", "pair_weight", "units"):
+        assert there[column].tolist() == whole[column].tolist(), column
+    # on the cluster every group is binned: the same sums as streaming here with the projection
+    np.testing.assert_allclose(there["total_dist"], streamed["total_dist"], rtol=1e-9)
+    reference = reference(homes, ["zone"], "pop")  # scipy pdist
+    for _, row in there.iterrows():
+        key = (None if pd.isna(row["zone"]) else row["zone"],)
+        truth = reference[key]["total_dist"]
+        if not np.isnan(truth):
+            assert row["total_lo"] <= truth <= row["total_hi"], key
+    # the survey pass on the cluster gives the survey of this process (one cluster for both:
+    # starting one is the slow part)
+    parts = layer_parts(tmp_path / "homes")
+    here = prepare(parts, group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=16, spill=False)
+    far = prepare(parts, group_by=["zone"], weight="pop", setup=PLANAR, batch_rows=16, client=local_cluster)
+    pd.testing.assert_frame_equal(far.keys.keys, here.keys.keys)
+    np.testing.assert_array_equal(far.survey.count, here.survey.count)
+    np.testing.assert_allclose(far.survey.sums, here.survey.sums, rtol=1e-12)
+    frame = pytest.importorskip("dask_geopandas").from_geopandas(homes, npartitions=3)
+    framed = toolbox.group_spread(frame, dask_scheduler=address, **common)
+    np.testing.assert_allclose(framed["total_dist"], there["total_dist"], rtol=1e-9)
+    # without a scheduler (and no default client) a Dask frame is read here, partition by partition
+    alone = toolbox.group_spread(frame, **common)
+    assert alone["n_points"].tolist() == whole["n_points"].tolist()
+    live = whole["total_dist"].notna()  # a group of one point has no total
+    assert (alone["total_lo"][live] <= whole["total_hi"][live]).all()
+    assert (whole["total_lo"][live] <= alone["total_hi"][live]).all()
+
+
+def test_group_spread_streams_with_batch_rows(tmp_path, homes_gpkg, homes, reference):
+    out = tmp_path / "spread.csv"
+    code, err = _run_cli(
+        "group-spread",
+        *homes_gpkg.args,
+        "--group-by",
+        "zone",
+        "--weight",
+        "pop",
+        "--batch-rows",
+        "25",
+        "--output",
+        out,
+    )
+    assert code == 0, err
+    table = pd.read_csv(out)
+    reference = reference(homes, ["zone"], "pop")
+    for _, row in table.iterrows():
+        truth = reference[(None if pd.isna(row["zone"]) else row["zone"],)]["total_dist"]
+        if not np.isnan(truth):
+            assert row["total_lo"] <= truth <= row["total_hi"]
+
+
+def test_bad_input_on_streams_is_one_line_and_writes_nothing(tmp_path, homes, monkeypatch):
+    out = tmp_path / "spread.csv"
+    folder = tmp_path / "mixed"
+    _write_parts(homes, folder, 2)
+    homes.iloc[:5].to_crs("EPSG:4326").to_parquet(folder / "part-9.parquet")
+    code, err = _run_cli("group-spread", folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+    assert (
+        code != 0 and "do not agree" in err and "CRS EPSG:4326" in err and len(err.strip().splitlines()) == 1
+    )
+    (folder / "part-9.parquet").unlink()
+    holed = homes.iloc[:10].copy()
+    holed.loc[holed.index[3], "geometry"] = None
+    holed.to_parquet(folder / "part-1.parquet")
+    code, err = _run_cli("group-spread", folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+    assert (
+        code != 0 and "part-1.parquet" in err and "no geometry" in err and len(err.strip().splitlines()) == 1
+    )
+    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1)
+    code, err = _run_cli(
+        "group-spread", folder, "--group-by", "zone", "--dask-scheduler", "tcp://127.0.0.1:9", "--output", out
+    )
+    assert code != 0 and "No Dask scheduler answered" in err and len(err.strip().splitlines()) == 1
+    code, err = _run_cli("point-remoteness", folder, "--batch-rows", "50", "--output", tmp_path / "r.gpkg")
+    assert code != 0 and "reads its layer whole" in err
+    assert not out.exists() and not (tmp_path / "r.gpkg").exists()
+
+
+def test_refinement_in_several_passes_gives_the_same_totals(monkeypatch):
+    """Memory stays bounded: heavy cells are refined in passes of at most a given size."""
+    frame = _clustered_layer()
+    setup = estimate.distance_setup(frame.crs, "the layer", script="test")
+    results = []
+    for limit in (10**9, 300):  # one refinement pass, then many small ones
+        monkeypatch.setattr(streaming, "REFINE_CELLS_PER_PASS", limit)
+        with prepare(
+            layer_parts(frame), group_by=["zone"], weight="pop", setup=setup, batch_rows=200
+        ) as ready:
+            plan = ready.survey.plan(tolerance=0.01, method="projection")
+            refinement = ready.reduce(plan.accumulate).refinement(plan)
+            results.append(pair_sums(ready, tolerance=0.01, method="projection"))
+    parts = streaming._split(refinement, 300)
+    assert len(parts) > 1 and sum(p.size for p in parts) == refinement.size
+    assert all(p.size <= 300 or p.group.size == 1 for p in parts)
+    np.testing.assert_allclose(results[1].total, results[0].total, rtol=1e-12)
+    np.testing.assert_allclose(results[1].upper, results[0].upper, rtol=1e-12)

@@ -1,0 +1,447 @@
+"""The estimator's passes over a layer read in batches: in this process, or on a Dask cluster.
+
+The estimator's mergeable state (:mod:`toolbox.estimate.state`) is planned from a survey of
+every group (count, weight, extent), filled batch by batch, refined where bins are too heavy and
+finished once. This module runs those passes over a layer in parts
+(:func:`toolbox.layers.stream.layer_parts`):
+
+1. **Survey** (:func:`prepare`): every batch is read once, its weights and geometries checked,
+   its coordinates turned into the estimator's (planar in the layer's CRS or in ``--crs``, or
+   longitude and latitude), its groups coded, and surveyed. No batch sees every group, so
+   group keys are merged by value (:mod:`toolbox.batchkeys`) and each batch's survey is recoded
+   to the merged codes; the result is the same survey, with the same group order, as a
+   whole-layer read gives.
+2. **Sums** (:func:`pair_sums`): with the plan fixed, every batch gives a state and the states
+   are merged; a third pass runs only if some bins need refining; then the state is finished.
+
+In this process the survey pass also writes each batch's decoded columns (coordinates, weight,
+batch-local group code: 28 bytes a point) to a spill file in the temporary folder, when there
+is room for twice that; the later passes read it back instead of decoding the source again. On
+a cluster each worker reads and summarises its own parts, the summaries are merged in a tree on
+the workers, and only surveys and states reach the client, never coordinates. Memory holds one
+batch (and one read ahead), the key table and the state, whatever the layer's size.
+"""
+
+from __future__ import annotations
+
+import functools
+import os
+import shutil
+import tempfile
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from . import estimate, grouping
+from .batchkeys import KeyRegistry, KeyTable, merge_key_tables
+from .cluster import reduce_parts
+from .errors import InputError
+from .estimate.state import Survey
+from .layers import PointLayer
+from .layers.stream import LayerParts, prefetched
+
+__all__ = ["Prepared", "prepare", "pair_sums", "SPILL_BYTES_PER_POINT"]
+
+#: bytes a point takes in the spill: x, y and weight as float64, its batch-local group code
+SPILL_BYTES_PER_POINT = 28
+
+
+# --------------------------------------------------------------------------------------------
+# pass 1: decode, code and survey every batch
+
+
+@dataclass
+class _Decoded:
+    """One batch in the estimator's coordinates with its batch-local group codes and keys."""
+
+    x: np.ndarray
+    y: np.ndarray
+    w: np.ndarray | None
+    local_codes: np.ndarray
+    keys: KeyTable
+
+
+@dataclass(frozen=True)
+class _Surveyed:
+    """Group keys and the survey of some batches, its groups coded as the keys' rows."""
+
+    keys: KeyTable
+    survey: Survey
+
+
+def _decode(batch: PointLayer, group_by, weight, setup) -> _Decoded:
+    weights = grouping.feature_weights(batch.attributes, weight, batch.label)
+    x, y = setup.coordinates(batch.x, batch.y, batch.crs, batch.label)
+    local = grouping.group_features(batch.attributes, list(group_by))
+    # one point per feature (no MultiPoint): point i is feature i, no gathering needed
+    per_row = None if batch.feature.size == len(batch.attributes) else batch.feature
+    codes = local.codes if per_row is None else local.codes[per_row]
+    w = weights if weights is None or per_row is None else weights[per_row]
+    return _Decoded(x, y, w, codes, KeyTable(tuple(group_by), local.keys.reset_index(drop=True)))
+
+
+def _points(decoded: _Decoded, codes: np.ndarray, n_groups: int, setup) -> estimate.Points:
+    return estimate.Points.build(decoded.x, decoded.y, codes, n_groups, decoded.w, distance=setup)
+
+
+def _survey_batch(batch: PointLayer, group_by, weight, setup) -> _Surveyed:
+    decoded = _decode(batch, group_by, weight, setup)
+    count = max(decoded.keys.count, 1)
+    return _Surveyed(decoded.keys, Survey.of(_points(decoded, decoded.local_codes, count, setup)))
+
+
+def recode_survey(survey: Survey, mapping: np.ndarray, n_groups: int) -> Survey:
+    """The survey with group ``i`` renumbered ``mapping[i]``, among ``n_groups`` groups.
+
+    Groups without points get the neutral values (zero sums, empty extents), so recoded surveys
+    of different batches merge as surveys of the same groups.
+    """
+
+    def spread(values, fill):
+        out = np.full((n_groups, *values.shape[1:]), fill, dtype=values.dtype)
+        out[mapping] = values
+        return out
+
+    return replace(
+        survey,
+        n_groups=n_groups,
+        count=spread(survey.count, 0),
+        weight_sum=spread(survey.weight_sum, 0.0),
+        pair_weight=spread(survey.pair_weight, 0.0),
+        sums=spread(survey.sums, 0.0),
+        lo=spread(survey.lo, np.inf),
+        hi=spread(survey.hi, -np.inf),
+    )
+
+
+def _merge_surveyed(parts: list[_Surveyed]) -> _Surveyed:
+    keys = merge_key_tables([p.keys for p in parts])
+    survey = None
+    for part in parts:
+        mapping = keys.codes(part.keys.keys) if keys.fields else np.zeros(1, dtype=np.int64)
+        recoded = recode_survey(part.survey, mapping, keys.count)
+        survey = recoded if survey is None else survey.merge(recoded)
+    return _Surveyed(keys, survey)
+
+
+# --------------------------------------------------------------------------------------------
+# the spill
+
+
+@dataclass
+class _Spill:
+    """Decoded batches written one after the other to a file, read back batch by batch."""
+
+    folder: str
+    weighted: bool
+    batches: list = field(default_factory=list)  # (offset, points) of every batch
+
+    @property
+    def path(self) -> str:
+        return os.path.join(self.folder, "points.bin")
+
+    def write(self, x, y, w, codes) -> None:
+        offset = os.path.getsize(self.path) if os.path.exists(self.path) else 0
+        with open(self.path, "ab") as handle:
+            for column in (x, y, *([w] if self.weighted else []), codes.astype(np.int32)):
+                handle.write(memoryview(np.ascontiguousarray(column)))
+        self.batches.append((offset, x.size))
+
+    def read(self) -> Iterator[tuple]:
+        """``(x, y, weights or None, codes)`` of every batch, in the order written."""
+        with open(self.path, "rb") as handle:
+            for offset, n in self.batches:
+                handle.seek(offset)
+                x = np.fromfile(handle, np.float64, n)
+                y = np.fromfile(handle, np.float64, n)
+                w = np.fromfile(handle, np.float64, n) if self.weighted else None
+                yield x, y, w, np.fromfile(handle, np.int32, n)
+
+    def close(self) -> None:
+        shutil.rmtree(self.folder, ignore_errors=True)
+
+
+def _spill_folder(parts: LayerParts) -> str | None:
+    """A new folder for the spill when the temporary folder has room for twice its size."""
+    if parts.rows is None:
+        return None
+    base = tempfile.gettempdir()
+    if shutil.disk_usage(base).free < 2 * SPILL_BYTES_PER_POINT * parts.rows:
+        return None
+    return tempfile.mkdtemp(prefix="pairspread-spill-", dir=base)
+
+
+# --------------------------------------------------------------------------------------------
+# the prepared layer
+
+
+def _batch_then(batch: PointLayer, keys: KeyTable, group_by, weight, setup, then: Callable, into=None):
+    """On a worker: decode a batch, code its groups as ``keys`` does, and add it with ``then``."""
+    decoded = _decode(batch, group_by, weight, setup)
+    mapping = _mapping(keys, decoded.keys, batch.label)
+    return then(_points(decoded, mapping[decoded.local_codes], keys.count, setup), into=into)
+
+
+def _mapping(keys: KeyTable, local: KeyTable, label: str) -> np.ndarray:
+    if not keys.fields:
+        return np.zeros(1, dtype=np.int64)
+    codes = keys.codes(local.keys)
+    if (codes < 0).any():
+        raise InputError(
+            f"{label} changed while it was read (a group appeared that the first pass did not "
+            "see); run again when nothing writes to it."
+        )
+    return codes
+
+
+def _merge_states(states: list):
+    out = states[0]
+    for state in states[1:]:
+        out = out.merge(state)
+    return out
+
+
+@dataclass
+class Prepared:
+    """A layer after the survey pass: its groups, their survey, and its batches to replay.
+
+    ``keys`` holds one row per group (sorted as :func:`toolbox.grouping.group_features` sorts);
+    ``survey`` the estimator's survey with groups coded as those rows. Use it as a context
+    manager, so that the spill is removed however the computation ends.
+    """
+
+    parts: LayerParts
+    group_by: tuple[str, ...]
+    weight: str | None
+    setup: object
+    batch_rows: int
+    keys: KeyTable
+    survey: Survey
+    client: object = None
+    spill: _Spill | None = None
+    order: np.ndarray | None = None  # code in ``keys`` of each running code in the spill
+
+    @property
+    def groups(self) -> grouping.Grouping:
+        """The groups as a :class:`toolbox.grouping.Grouping` (keys only), for the table's rows."""
+        return self.keys.grouping()
+
+    def names(self) -> Callable[[int], str]:
+        """How notes name a group."""
+        return grouping.group_namer(self.groups.keys)
+
+    def _fields(self) -> list[str]:
+        return [*self.group_by, *([self.weight] if self.weight else [])]
+
+    def points(self) -> Iterator[estimate.Points]:
+        """Every batch again as estimator points, groups coded as ``keys`` (this process only)."""
+        n = self.keys.count
+        if self.spill is not None:
+            for x, y, w, codes in self.spill.read():
+                yield estimate.Points.build(x, y, self.order[codes], n, w, distance=self.setup)
+            return
+        for batch in prefetched(self.parts.batches(self._fields(), self.batch_rows)):
+            decoded = _decode(batch, self.group_by, self.weight, self.setup)
+            mapping = _mapping(self.keys, decoded.keys, batch.label)
+            yield _points(decoded, mapping[decoded.local_codes], n, self.setup)
+
+    def reduce(self, accumulate: Callable, merge: Callable = _merge_states):
+        """One more pass: every batch added with ``accumulate(points, into=state)`` (None for the
+        first), parts' states merged with ``merge`` (on the cluster, if any).
+
+        ``accumulate`` must pickle (a bound method of a plan, or a ``functools.partial``) when
+        the layer was prepared on a cluster.
+        """
+        if self.client is None:
+            result = None
+            for points in self.points():
+                result = accumulate(points, into=result)
+            return result
+        then = functools.partial(
+            _batch_then,
+            keys=self.keys,
+            group_by=self.group_by,
+            weight=self.weight,
+            setup=self.setup,
+            then=accumulate,
+        )
+        return reduce_parts(
+            self.parts, self._fields(), self.batch_rows, then, merge, in_place=True, client=self.client
+        )
+
+    def close(self) -> None:
+        if self.spill is not None:
+            self.spill.close()
+            self.spill = None
+
+    def __enter__(self) -> Prepared:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def prepare(
+    parts: LayerParts,
+    *,
+    group_by: Sequence[str],
+    weight: str | None,
+    setup,
+    batch_rows: int,
+    client=None,
+    spill: bool = True,
+) -> Prepared:
+    """The survey pass over a layer in parts: its groups, coded and surveyed.
+
+    Parameters
+    ----------
+    parts : LayerParts
+        The layer (:func:`toolbox.layers.stream.layer_parts`).
+    group_by : sequence of str
+        Key fields.
+    weight : str, optional
+        Weight field (checked in every batch: finite and non-negative).
+    setup : DistanceSetup
+        How coordinates become the estimator's (:func:`toolbox.estimate.distance_setup`).
+    batch_rows : int
+        Most features per batch.
+    client : distributed.Client, optional
+        Read and survey the parts on this cluster (and run the later passes there too).
+    spill : bool
+        In this process, keep the decoded batches in a temporary file for the later passes.
+
+    Returns
+    -------
+    Prepared
+
+    Examples
+    --------
+    >>> import geopandas, shapely
+    >>> from toolbox.estimate import DistanceSetup
+    >>> from toolbox.layers.stream import layer_parts
+    >>> frame = geopandas.GeoDataFrame({"zone": list("abab")}, geometry=shapely.points([0, 1, 5, 7], 0))
+    >>> setup = DistanceSetup("planar", "unknown")
+    >>> with prepare(layer_parts(frame), group_by=["zone"], weight=None, setup=setup, batch_rows=3) as ready:
+    ...     print(ready.survey.count.tolist(), [p.groups.tolist() for p in ready.points()])
+    [2, 2] [[0, 0, 1], [1]]
+    """
+    group_by = tuple(group_by or ())
+    fields = [*group_by, *([weight] if weight else [])]
+    parts.check_fields(fields)
+    if client is not None:
+        summarise = functools.partial(_survey_batch, group_by=group_by, weight=weight, setup=setup)
+        surveyed = reduce_parts(parts, fields, batch_rows, summarise, _merge_surveyed, client=client)
+        if surveyed is None:
+            raise _empty(parts)
+        return Prepared(parts, group_by, weight, setup, batch_rows, surveyed.keys, surveyed.survey, client)
+    folder = _spill_folder(parts) if spill else None
+    store = None if folder is None else _Spill(folder, weight is not None)
+    try:
+        registry, survey = KeyRegistry(group_by), None
+        for batch in prefetched(parts.batches(fields, batch_rows)):
+            decoded = _decode(batch, group_by, weight, setup)
+            running = registry.add(decoded.keys.keys)[decoded.local_codes]
+            if store is not None:  # in group order: later passes then touch one group's bins at a time
+                order = np.argsort(running.astype(np.int32), kind="stable")
+                w = None if decoded.w is None else decoded.w[order]
+                store.write(decoded.x[order], decoded.y[order], w, running[order])
+            mine = Survey.of(_points(decoded, running, registry.count, setup))
+            survey = (
+                mine if survey is None else recode_survey(survey, _all(survey), registry.count).merge(mine)
+            )
+        if survey is None:
+            raise _empty(parts)
+        keys, order = registry.table()
+    except BaseException:
+        if store is not None:
+            store.close()
+        raise
+    ready = Prepared(
+        parts, group_by, weight, setup, batch_rows, keys, recode_survey(survey, order, keys.count)
+    )
+    ready.spill, ready.order = store, order
+    return ready
+
+
+def _all(survey: Survey) -> np.ndarray:
+    return np.arange(survey.n_groups)
+
+
+def _empty(parts: LayerParts) -> InputError:
+    return InputError(
+        f"{parts.label} has no feature to compute with; check the input and any --where filter."
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# passes 2 and 3
+
+
+def pair_sums(ready: Prepared, *, tolerance: float, method: str) -> estimate.GroupPairSums:
+    """Every group's pair total with its guaranteed interval, from the prepared layer's passes.
+
+    On a cluster, ``auto`` bins small groups too (gathering their points for exact sums would
+    bring coordinates to one place); the guarantee is the same.
+    """
+    if ready.client is not None and method == "auto" and tolerance > 0:
+        method = "projection"
+    plan = ready.survey.plan(tolerance=tolerance, method=method, names=ready.names())
+    state = ready.reduce(plan.accumulate)
+    refinement = state.refinement(plan)
+    if refinement is None:
+        return state.finish(plan)
+    resolved = _Resolved()
+    for part in _split(refinement, REFINE_CELLS_PER_PASS):
+        for group, cells in ready.reduce(functools.partial(part.accumulate, plan)).by_cell().items():
+            resolved.cells.setdefault(group, {}).update(cells)
+    return state.finish(plan, resolved)
+
+
+#: most sub-bins refined in one pass: their state (six float64 each) stays under ~400 MB, and a
+#: refinement larger than that takes several passes, so memory does not grow with the layer
+REFINE_CELLS_PER_PASS = 8_000_000
+
+
+@dataclass
+class _Resolved:
+    """Heavy cells resolved over several refinement passes, as ``State.finish`` takes them."""
+
+    cells: dict = field(default_factory=dict)
+
+    def by_cell(self) -> dict:
+        return self.cells
+
+
+def _split(refinement, limit: int) -> list:
+    """The refinement cut into parts of at most ``limit`` sub-bins (whole cells; a cell larger
+    than the limit is a part of its own)."""
+    sizes = refinement.sub_bins
+    if refinement.size <= limit:
+        return [refinement]
+    parts, start, total = [], 0, 0
+    for end, size in enumerate(sizes.tolist()):
+        if total and total + size > limit:
+            parts.append((start, end))
+            start, total = end, 0
+        total += size
+    parts.append((start, sizes.size))
+    out = []
+    for a, b in parts:
+        sub = sizes[a:b]
+        offset = np.concatenate([[0], np.cumsum(sub)[:-1]]).astype(np.int64)
+        pick = slice(a, b)
+        out.append(
+            replace(
+                refinement,
+                group=refinement.group[pick],
+                direction=refinement.direction[pick],
+                bin=refinement.bin[pick],
+                lo=refinement.lo[pick],
+                hi=refinement.hi[pick],
+                sub_bins=sub,
+                offset=offset,
+                size=int(sub.sum()),
+            )
+        )
+    return out
