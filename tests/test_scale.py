@@ -16,7 +16,7 @@ import pandas as pd
 import pyproj
 import pytest
 import shapely
-from scipy.spatial.distance import pdist
+from scipy.spatial.distance import cdist, pdist
 
 from toolbox import batchkeys, cluster, estimate, grouping, streaming
 from toolbox.errors import GeometryError, InputError, ParameterError
@@ -196,22 +196,35 @@ def _clustered_layer() -> gpd.GeoDataFrame:
     return frame.iloc[rng.permutation(len(frame))].reset_index(drop=True)
 
 
-@pytest.mark.parametrize("layout", ["homes", "clustered"])
-@pytest.mark.parametrize("distance", ["planar", "geodesic"])
-@pytest.mark.parametrize("weighted", [False, True])
-def test_streamed_intervals_contain_the_exact_total(homes, layout, distance, weighted):
+def _in_pieces(frame, pieces):
+    """Batch rows that cut the frame into ``pieces`` batches."""
+    return -(-len(frame) // pieces)
+
+
+def _case(homes, layout, distance, weighted):
+    """A layer (homes, or clustered), its distance setup, groups and weights for one case."""
     frame = homes.dropna(subset=["zone"]) if layout == "homes" else _clustered_layer()
     frame = frame.reset_index(drop=True)
     if distance == "geodesic":
         frame = frame.to_crs("EPSG:4326")
-    weight = "pop" if weighted else None
     setup = estimate.distance_setup(frame.crs, "the layer", distance=distance, script="test")
-    whole = grouping.group_features(frame, ["zone"])
     weights = frame["pop"].to_numpy(dtype=float) if weighted else None
+    return frame, ("pop" if weighted else None), setup, grouping.group_features(frame, ["zone"]), weights
+
+
+every_case = pytest.mark.parametrize(
+    "layout, distance, weighted",
+    [(lay, d, w) for lay in ("homes", "clustered") for d in ("planar", "geodesic") for w in (False, True)],
+)
+
+
+@every_case
+def test_streamed_intervals_contain_the_exact_total(homes, layout, distance, weighted):
+    frame, weight, setup, whole, weights = _case(homes, layout, distance, weighted)
     truth = _exact_totals(frame, whole.codes, whole.count, weights, distance == "geodesic")
     totals = []
     for pieces in (1, 2, 7, 50):
-        rows = -(-len(frame) // pieces)
+        rows = _in_pieces(frame, pieces)
         for method in ("projection", "auto") if pieces == 7 else ("projection",):
             with prepare(
                 layer_parts(frame), group_by=["zone"], weight=weight, setup=setup, batch_rows=rows
@@ -229,6 +242,88 @@ def test_streamed_intervals_contain_the_exact_total(homes, layout, distance, wei
     # geodesic groups the frame's centre is itself such a sum, so the projection moves a little)
     for other in totals[1:]:
         np.testing.assert_allclose(other, totals[0], rtol=1e-9 if distance == "planar" else 1e-6)
+
+
+def _exact_cross(frame, codes, n_groups, weights, geodesic: bool, other=None):
+    """Σ_{a∈A, b∈B} w_a w_b d_ab for every pair of groups by brute force: scipy's cdist, or
+    pyproj.Geod.inv. With ``other`` = (frame, codes, groups, weights), its groups follow."""
+    xy, w = _coordinates(frame), np.ones(len(frame)) if weights is None else weights
+    if other is not None:
+        xy = np.concatenate([xy, _coordinates(other[0])])
+        w = np.concatenate([w, np.ones(len(other[0])) if other[3] is None else other[3]])
+        codes, n_groups = np.concatenate([codes, other[1] + n_groups]), n_groups + other[2]
+    out = np.full((n_groups, n_groups), np.nan)
+    for a in range(n_groups):
+        for b in range(n_groups):
+            ia, ib = np.flatnonzero(codes == a), np.flatnonzero(codes == b)
+            if a == b or ia.size == 0 or ib.size == 0:
+                continue
+            if geodesic:
+                i, j = (v.ravel() for v in np.meshgrid(ia, ib, indexing="ij"))
+                d = np.reshape(GEOD.inv(xy[i, 0], xy[i, 1], xy[j, 0], xy[j, 1])[2], (ia.size, ib.size))
+            else:
+                d = cdist(xy[ia], xy[ib])
+            out[a, b] = float(w[ia] @ d @ w[ib])
+    return out
+
+
+@every_case
+def test_streamed_cross_intervals_contain_the_exact_totals(homes, layout, distance, weighted):
+    frame, weight, setup, whole, weights = _case(homes, layout, distance, weighted)
+    truth = _exact_cross(frame, whole.codes, whole.count, weights, distance == "geodesic")
+    diagonal = _exact_totals(frame, whole.codes, whole.count, weights, distance == "geodesic")
+    np.fill_diagonal(truth, diagonal)
+    live = ~np.isnan(truth)
+    totals = []
+    for pieces in (1, 2, 7, 50):
+        with prepare(
+            layer_parts(frame), group_by=["zone"], weight=weight, setup=setup, batch_rows=_in_pieces(frame, pieces)
+        ) as ready:
+            sums = streaming.cross_sums(ready, tolerance=0.01, method="projection")
+        assert np.all(sums.lower[live] <= truth[live]) and np.all(truth[live] <= sums.upper[live]), pieces
+        assert np.all(sums.rel_bound[live] <= 0.01) and not np.isnan(sums.total[live]).any()
+        np.testing.assert_array_equal(np.isnan(sums.total), ~live)
+        totals.append(sums.total)
+    for other in totals[1:]:  # the same state, up to the order of additions
+        np.testing.assert_allclose(other, totals[0], rtol=1e-9 if distance == "planar" else 1e-6)
+
+
+@pytest.mark.parametrize("distance", ["planar", "geodesic"])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_streamed_cross_of_two_layers_contains_the_exact_totals(homes, distance, weighted):
+    first = homes.dropna(subset=["zone"]).reset_index(drop=True)
+    second = _clustered_layer()
+    if distance == "geodesic":
+        first, second = first.to_crs("EPSG:4326"), second.to_crs("EPSG:4326")
+    weight = "pop" if weighted else None
+    setup = estimate.distance_setup(first.crs, "the layer", distance=distance, script="test")
+    a, b = grouping.group_features(first, ["zone"]), grouping.group_features(second, ["zone"])
+    wa = first["pop"].to_numpy(dtype=float) if weighted else None
+    wb = second["pop"].to_numpy(dtype=float) if weighted else None
+    truth = _exact_cross(first, a.codes, a.count, wa, distance == "geodesic", (second, b.codes, b.count, wb))
+    block = np.ix_(np.arange(a.count), a.count + np.arange(b.count))
+    for pieces in (1, 2, 7, 50):
+        with (
+            prepare(layer_parts(first), group_by=["zone"], weight=weight, setup=setup,
+                    batch_rows=_in_pieces(first, pieces)) as one,
+            prepare(layer_parts(second), group_by=["zone"], weight=weight, setup=setup,
+                    batch_rows=_in_pieces(second, pieces)) as two,
+        ):  # fmt: skip
+            sums = streaming.cross_sums(one, two, tolerance=0.01, method="auto")
+        lower, upper, exact = sums.lower[block], sums.upper[block], truth[block]
+        assert np.all(lower <= exact) and np.all(exact <= upper), pieces
+        assert np.all(sums.rel_bound[block] <= 0.01)
+
+
+def test_streamed_cross_at_tolerance_zero_is_exact(homes):
+    frame = homes.dropna(subset=["zone"]).reset_index(drop=True)
+    whole = grouping.group_features(frame, ["zone"])
+    truth = _exact_cross(frame, whole.codes, whole.count, None, False)
+    with prepare(layer_parts(frame), group_by=["zone"], weight=None, setup=PLANAR, batch_rows=40) as ready:
+        sums = streaming.cross_sums(ready, tolerance=0, method="auto")
+    off = ~np.isnan(truth)
+    np.testing.assert_allclose(sums.total[off], truth[off], rtol=1e-12)
+    assert sums.exact[off].all()
 
 
 # --------------------------------------------------------------------------------------------
@@ -277,6 +372,15 @@ def test_group_spread_on_a_cluster_matches_one_process(local_cluster, tmp_path, 
     frame = pytest.importorskip("dask_geopandas").from_geopandas(homes, npartitions=3)
     framed = toolbox.group_spread(frame, dask_scheduler=address, **common)
     np.testing.assert_allclose(framed["total_dist"], there["total_dist"], rtol=1e-9)
+    # cross-spread on the cluster against streaming here (the same common bins; an entry near
+    # its tolerance may be recomputed from its points on one side only, so compare intervals)
+    crossed = toolbox.cross_spread(tmp_path / "homes", group_by="zone", weight="pop", dask_scheduler=address)
+    here = toolbox.cross_spread(tmp_path / "homes", group_by="zone", weight="pop", batch_rows=40)
+    assert crossed["n_to"].tolist() == here["n_to"].tolist()
+    live = here["total_dist"].notna()
+    assert (crossed["total_lo"][live] <= here["total_hi"][live]).all()
+    assert (here["total_lo"][live] <= crossed["total_hi"][live]).all()
+    assert (crossed["rel_bound"][live] <= 0.01).all()
     # without a scheduler (and no default client) a Dask frame is read here, partition by partition
     alone = toolbox.group_spread(frame, **common)
     assert alone["n_points"].tolist() == whole["n_points"].tolist()
@@ -306,6 +410,37 @@ def test_group_spread_streams_with_batch_rows(tmp_path, homes_gpkg, homes, refer
         truth = reference[(None if pd.isna(row["zone"]) else row["zone"],)]["total_dist"]
         if not np.isnan(truth):
             assert row["total_lo"] <= truth <= row["total_hi"]
+
+
+def test_cross_spread_streams_with_batch_rows(tmp_path, homes_gpkg, homes):
+    import toolbox
+
+    out = tmp_path / "cross.csv"
+    code, err = _run_cli(
+        "cross-spread", *homes_gpkg.args, "--group-by", "zone", "--weight", "pop", "--batch-rows", "25",
+        "--output", out,
+    )  # fmt: skip
+    assert code == 0, err
+    table = pd.read_csv(out, keep_default_na=False, na_values=[""])
+    frame = homes.copy()
+    whole = grouping.group_features(frame, ["zone"])
+    weights = frame["pop"].to_numpy(dtype=float)
+    truth = _exact_cross(frame, whole.codes, whole.count, weights, False)  # scipy cdist
+    np.fill_diagonal(truth, _exact_totals(frame, whole.codes, whole.count, weights, False))
+    assert len(table) == whole.count**2  # rows: every (from, to) pair in group order
+    exact, live = truth.ravel(), ~np.isnan(truth.ravel())
+    assert (table["total_lo"][live] <= exact[live]).all() and (exact[live] <= table["total_hi"][live]).all()
+    # two layers, the second streamed from a GeoParquet folder: the in-memory run's groups and
+    # intervals that overlap it
+    second = _clustered_layer()
+    _write_parts(second, tmp_path / "far", 3)
+    common = dict(group_by="zone", to=tmp_path / "far", to_group_by="zone", to_weight="pop")
+    streamed = toolbox.cross_spread(homes_gpkg.path, layer="homes", batch_rows=100, **common)
+    whole = toolbox.cross_spread(homes_gpkg.path, layer="homes", **common)
+    for column in ("from_group", "to_group", "n_from", "n_to", "units"):
+        assert streamed[column].tolist() == whole[column].tolist(), column
+    assert (streamed["total_lo"] <= whole["total_hi"]).all() and (whole["total_lo"] <= streamed["total_hi"]).all()
+    assert (streamed["rel_bound"] <= 0.01).all()
 
 
 def test_bad_input_on_streams_is_one_line_and_writes_nothing(tmp_path, homes, monkeypatch):

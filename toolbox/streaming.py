@@ -37,11 +37,12 @@ from . import estimate, grouping
 from .batchkeys import KeyRegistry, KeyTable, merge_key_tables
 from .cluster import reduce_parts
 from .errors import InputError
+from .estimate import cross_state
 from .estimate.state import Survey
 from .layers import PointLayer
 from .layers.stream import LayerParts, prefetched
 
-__all__ = ["Prepared", "prepare", "pair_sums", "SPILL_BYTES_PER_POINT"]
+__all__ = ["Prepared", "prepare", "pair_sums", "cross_sums", "SPILL_BYTES_PER_POINT"]
 
 #: bytes a point takes in the spill: x, y and weight as float64, its batch-local group code
 SPILL_BYTES_PER_POINT = 28
@@ -445,3 +446,69 @@ def _split(refinement, limit: int) -> list:
             )
         )
     return out
+
+
+# --------------------------------------------------------------------------------------------
+# cross sums: every group of one layer, or of two, on common bins
+
+
+def _shifted(points: estimate.Points, into=None, *, then: Callable, offset: int, n_groups: int):
+    """``then`` of the points with their group codes moved ``offset`` up, among ``n_groups``."""
+    return then(replace(points, groups=points.groups + offset, n_groups=n_groups), into=into)
+
+
+def cross_sums(
+    ready: Prepared, other: Prepared | None = None, *, tolerance: float, method: str
+) -> estimate.CrossPairSums:
+    """Totals between every pair of groups with their guaranteed intervals, from the passes.
+
+    With ``other`` (a second layer, prepared with the first one's distance setup) its groups
+    follow the first's, as :meth:`toolbox.estimate.Points.join` codes them, and the diagonal is
+    NaN (no group's own pair total is needed); otherwise the diagonal holds each group's own
+    pair total (:func:`pair_sums`). Every group is binned on common bins
+    (:mod:`toolbox.estimate.cross_state`); entries still over the tolerance are recomputed from
+    their groups' points in one more pass when they are few enough.
+    """
+    layers = [ready] if other is None else [ready, other]
+    offsets = [0, ready.keys.count]
+    total = sum(r.keys.count for r in layers)
+    estimate.check_cross_groups(total)
+    survey = None
+    for r, offset in zip(layers, offsets, strict=False):
+        mine = recode_survey(r.survey, offset + _all(r.survey), total)
+        survey = mine if survey is None else survey.merge(mine)
+
+    def one_pass(accumulate):
+        result = None
+        for r, offset in zip(layers, offsets, strict=False):
+            then = functools.partial(_shifted, then=accumulate, offset=offset, n_groups=total)
+            part = r.reduce(then)
+            result = part if result is None else result if part is None else result.merge(part)
+        return result
+
+    def in_memory(groups):
+        kept = one_pass(cross_state.gather_groups(groups))
+        points = cross_state.gathered_points(kept, survey, ready.setup)
+        return estimate.cross_sums(points, tolerance=tolerance, method=method)
+
+    cross = cross_state.cross_plan(survey, tolerance=tolerance, method=method)
+    if cross.gather:  # exact sums asked for, or too few points for a common frame
+        return in_memory(np.arange(total))
+    columns = cross_state.table(total)
+    if cross.note:
+        columns.note[...] = cross.note
+    else:
+        est, lo, hi, bound, directions = cross_state.cross_finish(one_pass(cross.plan.accumulate), cross)
+        columns.put(..., est, lo, hi, bound, exact=False, directions=directions)
+        again = cross_state.groups_to_gather(survey, bound, tolerance)
+        if again.size:  # groups packed into the same bins: their entries from their points
+            r = in_memory(again)
+            pick = np.ix_(again, again)
+            keep = ~np.eye(again.size, dtype=bool) & ~np.isnan(r.total[pick])
+            for name in ("total", "lower", "upper", "rel_bound", "exact", "directions"):
+                target = getattr(columns, name)
+                block = target[pick]
+                block[keep] = getattr(r, name)[pick][keep]
+                target[pick] = block
+    within = pair_sums(ready, tolerance=tolerance, method=method) if other is None else None
+    return cross_state.cross_result(survey, columns.columns(), within)

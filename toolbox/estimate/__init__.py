@@ -23,7 +23,7 @@ from .interval import (
 )
 from .points import Points
 from .results import CrossPairSums, GroupPairSums, PairSum, PointSums, raise_for_notes
-from .sums import EXACT_FALLBACK_POINTS, cross_sums, pair_sums, point_sums
+from .sums import EXACT_FALLBACK_POINTS, check_cross_groups, cross_sums, pair_sums, point_sums
 
 __all__ = [
     "DISTANCES",
@@ -36,6 +36,7 @@ __all__ = [
     "pair_sums",
     "point_sums",
     "cross_sums",
+    "check_cross_groups",
     "energy_test",
     "EnergyTest",
     "GroupPairSums",

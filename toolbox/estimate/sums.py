@@ -29,7 +29,14 @@ from .interval import (
 from .points import Points
 from .results import CrossPairSums, GroupPairSums, PointSums
 
-__all__ = ["EXACT_FALLBACK_POINTS", "MIN_PLANAR_SHARE", "pair_sums", "point_sums", "cross_sums"]
+__all__ = [
+    "EXACT_FALLBACK_POINTS",
+    "MIN_PLANAR_SHARE",
+    "pair_sums",
+    "point_sums",
+    "cross_sums",
+    "check_cross_groups",
+]
 
 #: largest group that gets exact geodesic sums when no local projection is good enough
 #: (about 2e8 pairs, a few minutes at ~1 µs per pair)
@@ -358,11 +365,7 @@ def cross_sums(
     """
     m = check_method(method, tolerance)
     n_groups, n = points.n_groups, points.x.size
-    if n_groups > kernels.MAX_CROSS_GROUPS:
-        raise ParameterError(
-            f"{n_groups} groups would make a {n_groups} × {n_groups} result; at most "
-            f"{kernels.MAX_CROSS_GROUPS} groups are supported. Group by fewer or coarser fields."
-        )
+    check_cross_groups(n_groups)
     w = points.weight_array()
     if points.distance.kind == "geodesic":
         return _geodesic_cross(points, tolerance, method, m, progress, threads)
@@ -377,6 +380,15 @@ def cross_sums(
         out.put_raw(..., kernels.projected_cross_raw(cx, cy, points.groups, n_groups, w, m, tick))
         _exact_where_rounding_dominates(points, w, tolerance, out)
     return _cross_result(within, out)
+
+
+def check_cross_groups(n_groups: int) -> None:
+    """Refuse more groups than a G × G result can hold comfortably."""
+    if n_groups > kernels.MAX_CROSS_GROUPS:
+        raise ParameterError(
+            f"{n_groups} groups would make a {n_groups} × {n_groups} result; at most "
+            f"{kernels.MAX_CROSS_GROUPS} groups are supported. Group by fewer or coarser fields."
+        )
 
 
 def _exact_where_rounding_dominates(points, w, tolerance, out: _Table) -> None:

@@ -9,12 +9,13 @@ by batch (or partition by partition on the cluster), with the same guarantee.
 from __future__ import annotations
 
 import os
+import warnings
 from dataclasses import dataclass
 
 import pandas as pd
 
 from .. import cluster, estimate, streaming
-from ..errors import ParameterError
+from ..errors import InputError, ParameterError
 from ..layers import stream
 
 #: input files with more features than this are streamed even when no batch size is given
@@ -79,6 +80,13 @@ def _default_client():
         return None
 
 
+def _address(parts, dask_scheduler):
+    """The scheduler to run on: the one named, else a Dask frame's default client (if any)."""
+    if dask_scheduler is None and parts.source == "dask":
+        return _default_client()
+    return dask_scheduler
+
+
 def pair_sums(
     parts, *, group_by, weight, tolerance, method, distance, crs, batch_rows, dask_scheduler, script
 ):
@@ -89,12 +97,56 @@ def pair_sums(
     """
     setup = estimate.distance_setup(parts.crs, parts.label, distance=distance, target=crs, script=script)
     rows = stream.DEFAULT_BATCH_ROWS if batch_rows is None else batch_rows
-    address = dask_scheduler
-    if address is None and parts.source == "dask":
-        address = _default_client()
-    with cluster.connected(address) as client:
+    with cluster.connected(_address(parts, dask_scheduler)) as client:
         with streaming.prepare(
             parts, group_by=group_by, weight=weight, setup=setup, batch_rows=rows, client=client
         ) as ready:
             sums = streaming.pair_sums(ready, tolerance=tolerance, method=method)
     return Streamed(sums, ready.groups.keys, setup.units)
+
+
+@dataclass(frozen=True)
+class StreamedCross:
+    """Streamed cross sums and the keys of the first layer's groups and of the second's."""
+
+    sums: estimate.CrossPairSums
+    keys: pd.DataFrame
+    to_keys: pd.DataFrame
+    units: str
+
+
+def cross_sums(
+    parts, to_parts, *, group_by, weight, to_group_by, to_weight, tolerance, method, distance, crs,
+    batch_rows, dask_scheduler,
+) -> StreamedCross:  # fmt: skip
+    """Cross sums between the groups of a layer in parts (or between those of two layers), on
+    the cluster at ``dask_scheduler`` if given; the second layer is measured in the first's setup."""
+    setup = estimate.distance_setup(parts.crs, parts.label, distance=distance, target=crs, script="cross-spread")
+    rows = stream.DEFAULT_BATCH_ROWS if batch_rows is None else batch_rows
+    if to_parts is not None:
+        check_crs_pair(parts, to_parts, setup, note=crs is None)
+    with cluster.connected(_address(parts, dask_scheduler)) as client:
+        common = dict(setup=setup, batch_rows=rows, client=client)
+        with streaming.prepare(parts, group_by=group_by, weight=weight, **common) as ready:
+            if to_parts is None:
+                sums = streaming.cross_sums(ready, tolerance=tolerance, method=method)
+                return StreamedCross(sums, ready.groups.keys, ready.groups.keys, setup.units)
+            with streaming.prepare(to_parts, group_by=to_group_by, weight=to_weight, **common) as other:
+                sums = streaming.cross_sums(ready, other, tolerance=tolerance, method=method)
+                return StreamedCross(sums, ready.groups.keys, other.groups.keys, setup.units)
+
+
+def check_crs_pair(first, second, setup, *, note: bool) -> None:
+    """Refuse two layers of which only one has a CRS; say once when the second is transformed."""
+    if (first.crs is None) != (second.crs is None):
+        raise InputError(
+            f"Only one of {first.label} and {second.label} has a CRS, so their coordinates "
+            "cannot be related; assign the missing CRS first."
+        )
+    if note and second.crs is not None and second.crs != first.crs:
+        warnings.warn(
+            f"{second.label} was transformed from {second.crs.name} into the first layer's "
+            f"coordinates ({first.crs.name}) before computing distances.",
+            UserWarning,
+            stacklevel=3,
+        )

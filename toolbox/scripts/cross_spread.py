@@ -7,12 +7,14 @@ import pandas as pd
 
 from .. import estimate, layers, tables
 from ..errors import InputError, ParameterError
+from ..layers import stream
+from . import _large
 from ._common import group_points, method_column, read_grouped
 
 
 def cross_spread(
     data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method, distance, crs,
-    where, engine, wide, progress=None,
+    where, engine, wide, batch_rows, dask_scheduler, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """Mean distance between groups: every pair of one layer's groups, or groups of two layers."""
     if to is None and not group_by:
@@ -21,11 +23,60 @@ def cross_spread(
         )
     if to is None and (to_layer or to_group_by or to_weight):
         raise ParameterError("--to-layer, --to-group-by and --to-weight need --to.")
+    large = dict(engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler)
+    parts = _large.large_parts(data, layer=layer, where=where, **large)
+    to_parts = None if to is None else _large.large_parts(to, layer=to_layer, where=None, **large)
+    if parts is not None or to_parts is not None:  # batch by batch, or on a cluster
+        if parts is None:
+            parts = stream.layer_parts(data, layer=layer, where=where, engine=engine)
+        if to is not None and to_parts is None:
+            to_parts = stream.layer_parts(to, layer=to_layer, engine=engine)
+        read = _large.cross_sums(
+            parts, to_parts, group_by=group_by, weight=weight, to_group_by=to_group_by, to_weight=to_weight,
+            tolerance=tolerance, method=method, distance=distance, crs=crs, batch_rows=batch_rows,
+            dask_scheduler=dask_scheduler,
+        )  # fmt: skip
+        sums, keys, to_keys, units = read.sums, read.keys, read.to_keys, read.units
+    else:
+        sums, keys, to_keys, units = _in_memory(
+            data, layer=layer, group_by=group_by, weight=weight, to=to, to_layer=to_layer,
+            to_group_by=to_group_by, to_weight=to_weight, tolerance=tolerance, method=method,
+            distance=distance, crs=crs, where=where, engine=engine, progress=progress,
+        )  # fmt: skip
+    estimate.raise_for_notes(sums)
+    n_from = len(keys)
+    rows = np.arange(n_from)
+    cols = np.arange(n_from, sums.n_points.size) if to is not None else rows
+    a, b = (v.ravel() for v in np.meshgrid(rows, cols, indexing="ij"))
+    table = pd.DataFrame(
+        {
+            "from_group": tables.group_labels(keys)[a],
+            "to_group": tables.group_labels(to_keys)[b - (n_from if to is not None else 0)],
+            "n_from": sums.n_points[a],
+            "n_to": sums.n_points[b],
+            "total_dist": sums.total[a, b],
+            "total_lo": sums.lower[a, b],
+            "total_hi": sums.upper[a, b],
+            "mean_dist": sums.mean[a, b],
+            "rel_bound": sums.rel_bound[a, b],
+            "method": method_column(sums.method[a, b]),
+            "directions": sums.directions[a, b],
+            "units": units,
+        }
+    )
+    if not wide:
+        return table
+    return tables.wide_matrix(table)
+
+
+def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method,
+               distance, crs, where, engine, progress):  # fmt: skip
+    """Both layers read whole: the sums and the keys of the rows and of the columns."""
     first = read_grouped(
         data, layer=layer, group_by=group_by, weight=weight, where=where, engine=engine,
         distance=distance, crs=crs, script="cross-spread",
     )  # fmt: skip
-    points, n_from, second = first.points, first.groups.count, first
+    points, second = first.points, first
     if to is not None:
         other = layers.read_points(
             to, layer=to_layer, fields=[*to_group_by, *([to_weight] if to_weight else [])], engine=engine
@@ -39,26 +90,4 @@ def cross_spread(
         second = group_points(other, to_group_by, to_weight, first.setup, note=crs is None)
         points = points.join(second.points)
     sums = estimate.cross_sums(points, tolerance=tolerance, method=method, progress=progress)
-    estimate.raise_for_notes(sums)
-    rows = np.arange(n_from)
-    cols = np.arange(n_from, points.n_groups) if to is not None else rows
-    a, b = (v.ravel() for v in np.meshgrid(rows, cols, indexing="ij"))
-    table = pd.DataFrame(
-        {
-            "from_group": tables.group_labels(first.groups.keys)[a],
-            "to_group": tables.group_labels(second.groups.keys)[b - (n_from if to is not None else 0)],
-            "n_from": sums.n_points[a],
-            "n_to": sums.n_points[b],
-            "total_dist": sums.total[a, b],
-            "total_lo": sums.lower[a, b],
-            "total_hi": sums.upper[a, b],
-            "mean_dist": sums.mean[a, b],
-            "rel_bound": sums.rel_bound[a, b],
-            "method": method_column(sums.method[a, b]),
-            "directions": sums.directions[a, b],
-            "units": first.setup.units,
-        }
-    )
-    if not wide:
-        return table
-    return tables.wide_matrix(table)
+    return sums, first.groups.keys, second.groups.keys, first.setup.units
