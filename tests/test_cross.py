@@ -161,6 +161,43 @@ def test_cross_sums_against_cdist(kind, method, tolerance):
     np.testing.assert_array_equal(got.n_points, np.bincount(g, minlength=n_groups))
 
 
+@functools.cache
+def summed_projections(kind: str, m: int):
+    """Σ over m directions u of Σ_{a∈A, b∈B} w_a w_b |<p_a − p_b, u>|, by brute force."""
+    (x, y, g, n_groups, weights), _, _ = cross_reference(kind)
+    w = np.ones(x.size) if weights is None else weights
+    x, y = x - x.mean(), y - y.mean()
+    onehot = np.zeros((x.size, n_groups))
+    onehot[np.arange(x.size), g] = w
+    out = np.zeros((n_groups, n_groups))
+    for k in range(m):
+        p = x * math.cos(k * math.pi / m) + y * math.sin(k * math.pi / m)
+        for a in range(0, x.size, 1000):
+            out += onehot[a : a + 1000].T @ np.abs(p[a : a + 1000, None] - p[None, :]) @ onehot
+    return (x, y, g, n_groups, w), out
+
+
+@pytest.mark.parametrize("kind", ["clustered", "many"])
+@pytest.mark.parametrize("route", ["compiled sweep", "numpy blocks"])
+def test_summed_projections_match_their_definition(kind, route, monkeypatch):
+    # Along direction u the projected cross sum is Σ_{a∈A, b∈B} w_a w_b |<p_a − p_b, u>| by
+    # definition (the Cauchy–Crofton sum of DESIGN.md). Both kernel routes (the compiled sweep
+    # over open groups, and numpy's block sums used without numba) must give it to rounding,
+    # on 1 and 2 threads.
+    from toolbox.kernels import cross
+    from toolbox.kernels._common import Ticker
+
+    if route == "numpy blocks":
+        monkeypatch.setattr(cross, "compiled_module", lambda name: None)
+    m = 5
+    (x, y, g, n_groups, w), expected = summed_projections(kind, m)
+    scale = np.abs(expected).max()
+    for threads in (1, 2):
+        got = cross.projected_cross_raw(x, y, g, n_groups, w, m, Ticker(None, 0), threads)
+        assert got.directions == m
+        np.testing.assert_allclose(got.value, expected, rtol=1e-9, atol=1e-12 * scale)
+
+
 def test_groups_without_points_get_empty_rows():
     # n_groups beyond the codes present: those groups have no points and no distances
     (x, y, g, n_groups, weights), ref, pair_weight = cross_reference("random")

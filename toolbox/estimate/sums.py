@@ -377,7 +377,7 @@ def cross_sums(
     if use_exact:
         out.put_raw(..., kernels.exact_cross_raw(cx, cy, points.groups, n_groups, w, tick))
     else:
-        out.put_raw(..., kernels.projected_cross_raw(cx, cy, points.groups, n_groups, w, m, tick))
+        out.put_raw(..., kernels.projected_cross_raw(cx, cy, points.groups, n_groups, w, m, tick, threads))
         _exact_where_rounding_dominates(points, w, tolerance, out)
     return _cross_result(within, out)
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+import importlib
 import math
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -21,6 +22,18 @@ BLOCK_ELEMENTS = 1 << 21
 SMALL_EXACT = 64
 
 Progress = Callable[[int, int], None]
+
+
+@functools.cache
+def compiled_module(name: str):
+    """A numba kernel module of this package, imported on first use (numba is slow to import).
+
+    None without numba: the caller then takes its numpy route (same results, slower).
+    """
+    try:
+        return importlib.import_module(f"{__package__}.{name}")
+    except ImportError:
+        return None
 
 
 def directions_unit_vectors(m: int) -> tuple[np.ndarray, np.ndarray]:

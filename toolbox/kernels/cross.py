@@ -14,7 +14,15 @@ from __future__ import annotations
 import numpy as np
 
 from . import costs
-from ._common import BLOCK_ELEMENTS, UNIT_ROUNDOFF, Raw, directions_unit_vectors, exact_rounding
+from ._common import (
+    BLOCK_ELEMENTS,
+    UNIT_ROUNDOFF,
+    Raw,
+    compiled_module,
+    directions_unit_vectors,
+    exact_rounding,
+    thread_limit,
+)
 
 __all__ = ["MAX_CROSS_GROUPS", "exact_cross_raw", "projected_cross_raw"]
 
@@ -34,22 +42,56 @@ def exact_cross_raw(x, y, groups, n_groups, w, tick) -> Raw:
     return Raw(total, 0, relative=rounding, radius_mass=np.outer(wr, ws) + np.outer(ws, wr))
 
 
-def projected_cross_raw(x, y, groups, n_groups, w, m, tick) -> Raw:
+def projected_cross_raw(x, y, groups, n_groups, w, m, tick, threads=None) -> Raw:
     """Summed projections of the G × G cross sums of centred points on ``m`` directions."""
     n = x.size
-    summed = np.zeros((n_groups, n_groups))
-    beta = costs.cross_block(n_groups)
-    for c, s in zip(*directions_unit_vectors(m), strict=True):
-        part = _projected_cross(x * c + y * s, groups, n_groups, w, beta)
-        summed += part + part.T
-        tick(n)
+    cos_t, sin_t = directions_unit_vectors(m)
+    sweep = compiled_module("_cross_sweep")
+    if sweep is not None:
+        summed, chain = _swept(sweep, x, y, groups, n_groups, w, cos_t, sin_t, tick, threads)
+    else:
+        summed = np.zeros((n_groups, n_groups))
+        beta = costs.cross_block(n_groups)
+        for c, s in zip(cos_t, sin_t, strict=True):
+            part = _projected_cross(x * c + y * s, groups, n_groups, w, beta)
+            summed += part + part.T
+            tick(n)
+        chain = -(-n // beta) + beta
     weight_sum = np.bincount(groups, w, n_groups)
-    blocks = -(-n // beta)
     radius = float(np.hypot(x, y).max()) if n else 0.0
     # Rounding: each ordered half is bounded by 2·R·W_A·W_B and accumulates over at most
-    # T + β + 16 terms, so the computed entry is within that many units of roundoff of it.
-    slack = m * (blocks + beta + 16) * UNIT_ROUNDOFF * 4 * radius * np.outer(weight_sum, weight_sum)
+    # `chain` + 16 terms per direction (blocks and block size; or a group's points against
+    # running sums over another group's), so the computed entry is within that many units of
+    # roundoff of it, per direction.
+    slack = m * (chain + 16) * UNIT_ROUNDOFF * 4 * radius * np.outer(weight_sum, weight_sum)
     return Raw(summed, m, absolute=slack)
+
+
+#: most bytes of per-thread G × G matrices the swept kernel may hold
+_SWEEP_BYTES = 1 << 29
+
+
+def _swept(sweep, x, y, groups, n_groups, w, cos_t, sin_t, tick, threads):
+    """Cross sums by the compiled sweep, a few directions per call so progress can be told."""
+    import numba
+
+    n, m = x.size, cos_t.size
+    workers = max(
+        1, min(threads or numba.get_num_threads(), m, _SWEEP_BYTES // (8 * n_groups * n_groups + 1))
+    )
+    args = [
+        np.ascontiguousarray(v, dtype=t) for v, t in ((x, float), (y, float), (groups, np.int64), (w, float))
+    ]
+    step = workers * max(1, (1 << 22) // max(n, 1))
+    with thread_limit(workers):
+        acc = np.zeros((numba.get_num_threads(), n_groups, n_groups))
+        for k in range(0, m, step):
+            sweep.swept_cross_halves(*args, cos_t[k : k + step], sin_t[k : k + step], acc)
+            tick(n * cos_t[k : k + step].size)
+    half = acc.sum(axis=0)
+    counts = np.bincount(groups, minlength=n_groups)
+    # a group's points against running sums of another's, plus the summing over directions
+    return half + half.T, 2 * int(counts.max(initial=0)) + m
 
 
 def _projected_cross(p, groups, n_groups, w, beta) -> np.ndarray:

@@ -10,7 +10,6 @@ bins exactly, pairs in one bin bounded by its width). These functions return
 from __future__ import annotations
 
 import dataclasses
-import functools
 import os
 from concurrent.futures import ThreadPoolExecutor
 
@@ -21,20 +20,16 @@ from ._common import (
     SMALL_EXACT,
     UNIT_ROUNDOFF,
     Raw,
+    compiled_module,
     directions_unit_vectors,
     exact_rounding,
     thread_limit,
 )
 
 
-@functools.cache
 def _compiled():
-    """The numba kernel module, imported on first use (numba is slow to import); None without."""
-    try:
-        from . import _bucketed
-    except ImportError:  # numba missing: sort rows with numpy instead (same results, slower)
-        return None
-    return _bucketed
+    """The binned kernel module; None without numba (rows are then sorted with numpy)."""
+    return compiled_module("_bucketed")
 
 
 #: point-directions per call of the compiled kernel, so that progress can be reported
