@@ -370,7 +370,7 @@ def cross_sums(
     if points.distance.kind == "geodesic":
         return _geodesic_cross(points, tolerance, method, m, progress, threads)
     within = pair_sums(points, tolerance=tolerance, method=method, threads=threads)
-    use_exact = m == 0 or (method == "auto" and costs.exact(n) <= costs.cross_projection(n, n_groups, m))
+    use_exact = m == 0 or (method == "auto" and costs.exact(n) <= costs.cross_projection(n, n_groups, m, kernels.has_compiled()))
     cx, cy = kernels.centre(points.x, points.y, np.zeros(n, dtype=np.int64), 1, w)
     tick = Ticker(progress, n if use_exact else m * n)
     out = _Table((n_groups, n_groups))
