@@ -1,7 +1,8 @@
 """Polygons and lines as points, region joins, nearest distances, provenance and maps.
 
 Layer-level checks against outside references (each named beside its check):
-- the fill model's discrete sums, bracketed by the allowances of ``pair_allowance``, against the
+- the fill model's interval (the estimator's sums of the samples, widened by the model's
+  allowance in ``toolbox.estimate.pieces``) against the
   mean distance between two uniform points of a disk, a square, a 2 × 3 rectangle and a segment
   (shared/REFERENCES.md: MathWorld's "Disk/Square/Line Line Picking", Mathai, Moschopoulos &
   Pederzoli 1999), with scipy's pdist for the discrete sums;
@@ -23,10 +24,11 @@ import shapely
 from scipy.spatial.distance import cdist, pdist
 
 from toolbox.errors import GeometryError, InputError, OutputError, ParameterError
+from toolbox.estimate import Points, pair_sums
 from toolbox.kernels.nearest import nearest_geodesic, nearest_planar
 from toolbox.layers import provenance, write_output
 from toolbox.layers.regions import join_regions, onto_regions
-from toolbox.layers.shapes import as_points, default_spacing, pair_allowance
+from toolbox.layers.shapes import as_points, default_spacing
 
 # mean distance between two independent uniform points (shared/REFERENCES.md)
 DISK = 128 / (45 * math.pi)  # radius 1; MathWorld "Disk Line Picking" (Uspensky 1937; Solomon 1978)
@@ -48,13 +50,16 @@ def test_rectangle_formula_matches_the_published_value():
 
 
 def discrete_interval(pts):
-    """The fill model's interval from brute-force discrete sums (scipy pdist) and the allowances."""
+    """The fill model's mean interval from the estimator, exact sums of the samples."""
     w = pts.share
+    sums = pair_sums(Points.build(pts.x, pts.y, weights=w, shift=pts.shift), tolerance=0)
+    # planar samples are their pieces' centroids, so the model's total is at least the samples'
+    # (Jensen): the lower bound is their brute-force sum (scipy pdist) over the pair weight W²/2
     weights = np.outer(w, w)[np.triu_indices(w.size, k=1)]
-    pair_weight = weights.sum()
-    mean = float(np.dot(weights, pdist(np.column_stack([pts.x, pts.y])))) / pair_weight
-    lower, upper, _ = pair_allowance(pts.x, pts.y, w, pts.shift, np.zeros(w.size, dtype=int), 1)
-    return mean - lower[0], mean, mean + upper[0]
+    discrete = float(np.dot(weights, pdist(np.column_stack([pts.x, pts.y]))))
+    assert sums.pair_weight[0] == pytest.approx(w.sum() ** 2 / 2)
+    assert sums.lower[0] == pytest.approx(discrete, rel=1e-9)
+    return sums.lower[0] / sums.pair_weight[0], sums.mean[0], sums.upper[0] / sums.pair_weight[0]
 
 
 SHAPES = {
@@ -116,9 +121,9 @@ def test_fill_refuses_mixed_and_degenerate_layers():
     empty = gpd.GeoDataFrame(geometry=[shapely.box(0, 0, 1, 1), None])
     with pytest.raises(GeometryError, match="no geometry"):
         as_points(empty, [], "holes", rule="inside")
-    with pytest.raises(ParameterError, match="fill-spacing"):
+    with pytest.raises(ParameterError, match="fill.spacing"):
         as_points(gpd.GeoDataFrame(geometry=[shapely.box(0, 0, 1, 1)]), [], "x", rule="fill", spacing=-1)
-    with pytest.raises(ParameterError, match="larger --fill-spacing"):
+    with pytest.raises(ParameterError, match="larger .fill.spacing"):
         as_points(gpd.GeoDataFrame(geometry=[shapely.box(0, 0, 1e5, 1e5)]), [], "x", rule="fill", spacing=1e-2)
 
 
@@ -200,7 +205,7 @@ def test_region_errors_name_the_fix(tmp_path):
         join_regions(np.zeros(1), np.zeros(1), regions.crs, "p", lines, region_id="name")
     with pytest.raises(InputError, match="Only one of"):
         join_regions(np.zeros(1), np.zeros(1), None, "p", regions, region_id="name")
-    with pytest.raises(ParameterError, match="outside-regions"):
+    with pytest.raises(ParameterError, match="outside.regions"):
         join_regions(np.zeros(1), np.zeros(1), regions.crs, "p", regions, region_id="name", outside="keep")
 
 

@@ -21,6 +21,7 @@ from .interval import (
     projection_error,
     projection_factors,
 )
+from .pieces import feature_sums
 from .points import Points
 from .results import CrossPairSums, GroupPairSums, PairSum, PointSums, raise_for_notes
 from .sums import EXACT_FALLBACK_POINTS, check_cross_groups, cross_sums, pair_sums, point_sums
@@ -37,6 +38,7 @@ __all__ = [
     "point_sums",
     "cross_sums",
     "check_cross_groups",
+    "feature_sums",
     "energy_test",
     "EnergyTest",
     "GroupPairSums",

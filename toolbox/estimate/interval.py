@@ -36,6 +36,7 @@ __all__ = [
     "planar_tolerance",
     "fold_distortion",
     "forward_slack",
+    "widen",
 ]
 
 METHODS = ("auto", "exact", "projection")
@@ -290,3 +291,24 @@ def fold_distortion(estimate, lower, upper, k_min, k_max, slack=0.0):
 def forward_slack(a: float, pair_weight):
     """Allowance for PROJ's rounding of the projected coordinates, ``2δ`` per pair distance."""
     return FORWARD_ALLOWANCE * 2 * (a / EARTH_A) * np.asarray(pair_weight, dtype=np.float64)
+
+
+def widen(estimate, lower, upper, below, above):
+    """Estimate, bounds and relative bound once the true value may lie ``below``/``above`` further.
+
+    For allowances that come from outside the sums (the pieces of ``--as-points fill``, see
+    :mod:`toolbox.estimate.pieces`): the interval grows to ``[lower − below, upper + above]``
+    (never below 0), the estimate stays unless it falls outside, and the relative bound is taken
+    anew. The allowances are sums of non-negative terms whose rounding is far under 1e-9 of them
+    for any layer that fits in memory; they grow by that much.
+
+    Examples
+    --------
+    >>> [round(float(v), 6) for v in widen(10.0, 9.0, 11.0, 0.0, 1.0)]
+    [10.0, 9.0, 12.0, 0.166667]
+    """
+    grow = 1 + 1e-9
+    lo = np.maximum(np.asarray(lower, dtype=np.float64) - grow * np.asarray(below, dtype=np.float64), 0.0)
+    hi = np.asarray(upper, dtype=np.float64) + grow * np.asarray(above, dtype=np.float64)
+    est = np.clip(np.asarray(estimate, dtype=np.float64), lo, hi)
+    return est, lo, hi, _relative_bound(est, lo, hi)

@@ -10,11 +10,14 @@ asked gets NaN sums and a note saying why and what to do; the others are compute
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from .. import kernels
 from ..errors import ParameterError
 from ..kernels import GroupLayout, Raw, Ticker, costs
+from . import pieces
 from .frames import local_frame
 from .interval import (
     bin_budget,
@@ -272,6 +275,11 @@ def pair_sums(
     >>> round(float(r.total[0]), 3)
     3787.972
     """
+    if points.shift is not None:  # samples of pieces of features: the model's allowance widens them
+        # half the tolerance for the samples' sums, half for the allowance (the default fill
+        # spacing is chosen for that)
+        plain = pair_sums(replace(points, shift=None), tolerance=tolerance / 2, method=method, progress=progress, threads=threads)
+        return pieces.widen_pairs(plain, points)
     check_method(method, tolerance)
     geodesic, lay = _layout(points)
     counts = lay.counts
@@ -315,6 +323,8 @@ def point_sums(
     >>> r.total.tolist()  # 3-4-5 triangle: each vertex's two sides
     [7.0, 8.0, 9.0]
     """
+    if points.shift is not None:
+        raise ParameterError("Samples of pieces of features have no per-point sums of their own; use feature_sums.")
     check_method(method, tolerance)
     geodesic, lay = _layout(points)
     counts = lay.counts
@@ -363,6 +373,11 @@ def cross_sums(
     >>> r.total[[0, 1, 0], [1, 0, 0]].round(6).tolist()  # 4 + 5 + 3 + √18 both ways; group 0's pair
     [16.242641, 16.242641, 1.0]
     """
+    if points.shift is not None:  # samples of pieces of features: the model's allowance widens them
+        # half the tolerance for the samples' sums, half for the allowance (the default fill
+        # spacing is chosen for that)
+        plain = cross_sums(replace(points, shift=None), tolerance=tolerance / 2, method=method, progress=progress, threads=threads)
+        return pieces.widen_cross(plain, points)
     m = check_method(method, tolerance)
     n_groups, n = points.n_groups, points.x.size
     check_cross_groups(n_groups)

@@ -13,9 +13,9 @@ polygon's boundary).
 The model behind ``fill`` is "weight spread uniformly over the feature". Its mean distance is
 E|X − Y| for X, Y drawn independently from that spread weight. Moving every point of a piece to
 the piece's sample moves it by at most r, so each pair distance changes by at most 2r; using the
-mean shift instead of the largest, and the fact that a sample is its piece's centroid, gives the
-tighter one-sided allowances of :func:`pair_allowance`, which scripts fold into their guaranteed
-intervals through the estimator.
+mean shift instead of the largest, and the fact that a sample is its piece's centroid, gives
+tighter allowances. The estimator folds them into its guaranteed intervals when the points carry
+their shifts (``estimate.Points(..., shift=...)``, see :mod:`toolbox.estimate.pieces`).
 """
 
 from __future__ import annotations
@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 import shapely
 
-from ..errors import GeometryError, ParameterError
+from ..errors import GeometryError, ParameterError, spell
 from .read import _TYPE_NAMES, PointLayer, _check_fields, _finish, read_layer, read_points
 
 __all__ = [
@@ -38,8 +38,6 @@ __all__ = [
     "read_input",
     "as_points",
     "default_spacing",
-    "pair_allowance",
-    "degree_scale",
 ]
 
 #: the ways a feature becomes points (``--as-points``)
@@ -71,14 +69,20 @@ class ShapePoints(PointLayer):
     rule: str
     spacing: float | None
 
-    def describe(self, units: str = "") -> str:
-        """One line saying how the features became points, for outputs and provenance."""
+    def describe(self, units: str = "", *, default: bool = False) -> str:
+        """One line saying how the features became points, for outputs and provenance.
+
+        ``default`` says the spacing was chosen by :func:`default_spacing`, not given.
+        """
         if self.rule == "points":
             return "points as stored"
+        if self.rule == "centroid":
+            return "centroid (one point per feature; it may lie outside a concave polygon)"
         if self.rule != "fill":
             return f"{self.rule} (one point per feature)"
         unit = f" {units}" if units and units != "unknown" else ""
-        return f"fill (grid spacing {self.spacing:.6g}{unit}, {self.x.size} sample points)"
+        chosen = ", the default for the layer and tolerance" if default else ""
+        return f"fill (grid spacing {self.spacing:.6g}{unit}{chosen}; {self.x.size} sample points)"
 
 
 def read_input(
@@ -95,7 +99,8 @@ def read_input(
 ) -> ShapePoints:
     """Read a layer as weighted points: its points as they are, or its features by ``as_points``.
 
-    ``crs`` (the run's --crs) reprojects the features before they become points, so that the
+    ``crs`` (the run's --crs, or a function of the layer's CRS and label that returns the CRS
+    distances are measured in) reprojects the features before they become points, so that the
     fill grid and its allowances are in the CRS the distances are measured in.
 
     Without ``as_points`` the layer must hold points (the reader's message names --as-points
@@ -103,15 +108,19 @@ def read_input(
     points by :func:`as_points`. ``fill_spacing`` without ``as_points="fill"`` is refused.
     """
     if fill_spacing is not None and as_points != "fill":
-        raise ParameterError("--fill-spacing applies to --as-points fill only; add --as-points fill or drop it.")
+        raise ParameterError(
+            f"{spell('fill_spacing')} applies to {spell('as_points', 'fill')} only; add {spell('as_points', 'fill')} or drop it."
+        )
     if as_points is None:
         base = read_points(data, layer=layer, fields=fields, where=where, engine=engine)
         ones, zeros = np.ones(base.x.size), np.zeros(base.x.size)
         return ShapePoints(**base.__dict__, share=ones, shift=zeros, rule="points", spacing=None)
     frame, label = read_layer(data, layer=layer, where=where, engine=engine, columns=list(dict.fromkeys(fields)))
-    if crs is not None and frame.crs is not None:
-        frame = frame.to_crs(crs)
-    return as_points(frame, list(dict.fromkeys(fields)), label, rule=as_points, spacing=fill_spacing, tolerance=tolerance)
+    target = crs(frame.crs, label) if callable(crs) else crs
+    if target is not None and frame.crs is not None and not frame.crs.equals(target):
+        frame = frame.to_crs(target)
+    fields = list(dict.fromkeys(fields))
+    return _by_rule(frame, fields, label, rule=as_points, spacing=fill_spacing, tolerance=tolerance)
 
 
 def _type_ids(geometry: np.ndarray, label: str) -> np.ndarray:
@@ -120,7 +129,7 @@ def _type_ids(geometry: np.ndarray, label: str) -> np.ndarray:
     if missing.any():
         raise GeometryError(
             f"{int(missing.sum())} of {geometry.size} features of {label} have no geometry "
-            "(null or empty); drop them first, e.g. with --where."
+            f"(null or empty); drop them first, e.g. with {spell('where')}."
         )
     return types
 
@@ -194,7 +203,7 @@ def as_points(
     ([0.5, 1.5, 0.5, 1.5], [0.5, 0.5, 1.5, 1.5], [0.25, 0.25, 0.25, 0.25])
     """
     if rule not in RULES:
-        raise ParameterError(f"--as-points must be one of {', '.join(RULES)}. Got {rule!r} instead.")
+        raise ParameterError(f"{spell('as_points')} must be one of {', '.join(RULES)}. Got {rule!r} instead.")
     _check_fields(fields, [c for c in frame.columns if c != frame.geometry.name], label)
     attributes = pd.DataFrame(frame[list(fields)]).reset_index(drop=True)
     geometry = np.asarray(frame.geometry.values, dtype=object)
@@ -212,7 +221,7 @@ def as_points(
             if outside.any():
                 warnings.warn(
                     f"{int(outside.sum())} centroid(s) of {label} lie outside their polygon (concave "
-                    "or multi-part shapes); --as-points inside keeps every point on its feature.",
+                    f"or multi-part shapes); {spell('as_points', 'inside')} keeps every point on its feature.",
                     UserWarning,
                     stacklevel=3,
                 )
@@ -225,6 +234,9 @@ def as_points(
     return _fill(frame, attributes, geometry, types, label, spacing, tolerance)
 
 
+_by_rule = as_points  # read_input's keyword of the same name hides the function there
+
+
 def _fill(frame, attributes, geometry, types, label, spacing, tolerance) -> ShapePoints:
     kinds = {
         name: np.isin(types, ids) for name, ids in (("point", _POINTS), ("line", _LINES), ("polygon", _POLYGONS))
@@ -234,19 +246,19 @@ def _fill(frame, attributes, geometry, types, label, spacing, tolerance) -> Shap
     if other.any():
         kind = _TYPE_NAMES.get(int(types[other][0]), "other")
         raise GeometryError(
-            f"{label} has {int(other.sum())} {kind} feature(s); --as-points fill spreads weight over "
+            f"{label} has {int(other.sum())} {kind} feature(s); {spell('as_points', 'fill')} spreads weight over "
             "polygons (by area) or lines (by length) only: explode the collections first."
         )
     if len(present) > 1:
         raise GeometryError(
-            f"{label} mixes {' and '.join(present)} features; --as-points fill spreads weight by "
+            f"{label} mixes {' and '.join(present)} features; {spell('as_points', 'fill')} spreads weight by "
             "area for polygons and by length for lines, which cannot be mixed in one layer: split "
-            "it, or use --as-points centroid or inside."
+            f"it, or use {spell('as_points', 'centroid')} or {spell('as_points', 'inside')}."
         )
     if spacing is None:
         spacing = default_spacing(geometry, tolerance)
     elif not (spacing > 0 and math.isfinite(spacing)):
-        raise ParameterError(f"--fill-spacing must be a positive number. Got {spacing!r} instead.")
+        raise ParameterError(f"{spell('fill_spacing')} must be a positive number. Got {spacing!r} instead.")
     measure = shapely.area if present == ["polygon"] else shapely.length
     total = measure(geometry)
     if present != ["point"] and (total <= 0).any():
@@ -254,7 +266,7 @@ def _fill(frame, attributes, geometry, types, label, spacing, tolerance) -> Shap
         raise GeometryError(
             f"{rows.size} feature(s) of {label} have zero {'area' if present == ['polygon'] else 'length'} "
             f"(rows {', '.join(str(int(r)) for r in rows[:5])}); they cannot spread a weight: "
-            "repair or drop them, or use --as-points inside."
+            f"repair or drop them, or use {spell('as_points', 'inside')}."
         )
     if present == ["point"]:
         coords, feature = shapely.get_coordinates(geometry, return_index=True)
@@ -271,8 +283,8 @@ def _fill(frame, attributes, geometry, types, label, spacing, tolerance) -> Shap
 def _too_many(count: int, spacing: float, label: str) -> None:
     if count > _HARD_LIMIT:
         raise ParameterError(
-            f"--fill-spacing {spacing:g} would cut {label} into more than {_HARD_LIMIT:,} sample "
-            f"points ({count:,}); choose a larger --fill-spacing."
+            f"{spell('fill_spacing', spacing)} would cut {label} into more than {_HARD_LIMIT:,} sample "
+            f"points ({count:,}); choose a larger {spell('fill_spacing')}."
         )
 
 
@@ -351,62 +363,3 @@ def _fill_one(geom, spacing, origin, total):
         shift[cut] = far
     keep = amount > 0
     return x[keep], y[keep], amount[keep] / total, shift[keep]
-
-
-def pair_allowance(x, y, w, shift, codes, n_groups, *, scale: float = 1.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-pair allowances of the fill model, per group: ``(lower, upper, mean_shift)``.
-
-    The guaranteed interval of a group's own pairs widens from ``[lo, hi]`` to
-    ``[lo − lower·P, hi + upper·P]`` (P its discrete pair weight); pairs between two different
-    groups g and h widen by ``mean_shift[g] + mean_shift[h]`` on the upper side only.
-
-    Why: each sample is the centroid of its piece, so for two pieces the mean distance between
-    their points is at least the distance of the samples (Jensen: |·| is convex) and at most that
-    plus the pieces' mean distances to their own samples (``shift``, the triangle inequality).
-    Summed with the weights, the upper side gains ``2·s̄`` per pair, s̄ the weighted mean shift of
-    the group, pairs inside one piece included. Those inside-piece pairs are absent from the
-    discrete sum, which is divided by the discrete pair weight P = (W² − Σw²)/2 rather than W²/2;
-    that can lower the mean by at most ``diam · Σw²/W²`` (``lower``), ``diam`` being the diagonal
-    of the group's bounding box. A group of one sample point, whose sum has no pairs, gets NaN.
-
-    ``scale`` turns the coordinates' unit into the distances' unit when they differ: for
-    longitude and latitude (degrees) and geodesic metres, :func:`degree_scale`.
-
-    Examples
-    --------
-    >>> lower, upper, s = pair_allowance(np.array([0.0, 1]), np.array([0.0, 0]), np.ones(2),
-    ...                                  np.full(2, 0.25), np.zeros(2, dtype=int), 1)
-    >>> lower.tolist(), upper.tolist(), s.tolist()
-    ([0.5], [0.5], [0.25])
-    """
-    codes = np.asarray(codes)
-    big = np.full(n_groups, np.inf)
-    lo_x, lo_y, hi_x, hi_y = big.copy(), big.copy(), -big, -big
-    np.minimum.at(lo_x, codes, x)
-    np.minimum.at(lo_y, codes, y)
-    np.maximum.at(hi_x, codes, x)
-    np.maximum.at(hi_y, codes, y)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        diam = scale * np.hypot(hi_x - lo_x, hi_y - lo_y)
-        weight = np.bincount(codes, w, n_groups)
-        squares = np.bincount(codes, w * w, n_groups)
-        mean_shift = scale * np.where(weight > 0, np.bincount(codes, w * shift, n_groups) / weight, 0.0)
-        lower = np.where(squares > 0, diam * squares / weight**2, 0.0)
-    single = np.bincount(codes, minlength=n_groups) < 2
-    return np.where(single, np.nan, lower), np.where(single, np.nan, 2 * mean_shift), mean_shift
-
-
-def degree_scale(a: float, f: float) -> float:
-    """Metres per unit of straight-line length in (longitude, latitude) degrees, at most.
-
-    On the ellipsoid ds² = M² dφ² + (N cos φ)² dλ², and both M and N cos φ are at most the polar
-    radius of curvature a/√(1 − e²); so a path of Euclidean length L in degrees is at most
-    ``L · π/180 · a/√(1 − e²)`` metres long, and the geodesic between its ends no longer.
-
-    Examples
-    --------
-    >>> round(degree_scale(6378137.0, 1 / 298.257223563))
-    111694
-    """
-    e2 = f * (2 - f)
-    return math.pi / 180 * a / math.sqrt(1 - e2)
