@@ -322,7 +322,8 @@ def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
         raise GeometryError(
             f"{label} has {int(wrong.sum())} feature(s) that are not points ({listed}); "
             "this script needs Point or MultiPoint features; to use them, turn each into points "
-            "with --as-points centroid, inside or fill (Python: as_points=...)."
+            f"with {spell('as_points')} centroid (the centre), inside (a point on the feature) or "
+            "fill (the weight spread over the area or length)."
         )
     if shapely.has_z(geometry).any():
         warnings.warn(

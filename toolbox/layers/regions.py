@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError, ParameterError
+from ..errors import InputError, ParameterError, spell
 from .read import PointLayer, _check_fields, read_layer
 
 __all__ = ["OUTSIDE", "RegionJoin", "join_regions", "attach_regions", "onto_regions"]
@@ -98,27 +98,27 @@ def join_regions(
     import shapely
 
     if outside not in OUTSIDE:
-        raise ParameterError(f"--outside-regions must be one of {', '.join(OUTSIDE)}. Got {outside!r} instead.")
+        raise ParameterError(f"{spell('outside_regions')} must be one of {', '.join(OUTSIDE)}. Got {outside!r} instead.")
     if not region_id:
-        raise ParameterError("--regions needs --region-id, the field of the region layer that names each region.")
+        raise ParameterError(f"{spell('regions')} needs {spell('region_id')}, the field of the region layer that names each region.")
     frame, region_label = read_layer(regions, layer=layer, engine=engine)
     region_label = f"the region {region_label.removeprefix('the ')}"
     _check_fields([region_id], [c for c in frame.columns if c != frame.geometry.name], region_label)
     geometry = frame.geometry
     usable = geometry.notna() & ~geometry.is_empty
     if not usable.any():
-        raise InputError(f"{region_label} has no geometries; check --regions and --regions-layer.")
+        raise InputError(f"{region_label} has no geometries; check {spell('regions')} and {spell('regions_layer')}.")
     kinds = set(geometry[usable].geom_type)
     if not kinds <= {"Polygon", "MultiPolygon"}:
         raise InputError(
             f"{region_label} holds {', '.join(sorted(kinds - {'Polygon', 'MultiPolygon'}))} features; "
-            "--regions needs a polygon layer."
+            f"{spell('regions')} needs a polygon layer."
         )
     ids = frame[region_id]
     if ids[usable].isna().any():
         raise InputError(
             f"{int(ids[usable].isna().sum())} region(s) of {region_label} have no {region_id!r} value; "
-            "fill them in or choose another --region-id."
+            f"fill them in or choose another {spell('region_id')}."
         )
     if ids[usable].duplicated().any():
         repeated = ids[usable][ids[usable].duplicated()].unique()[:3]
@@ -170,9 +170,9 @@ def join_regions(
     if missing:
         if outside == "drop":
             keep = row >= 0
-            what = "they are left out (--outside-regions drop)"
+            what = f"they are left out ({spell('outside_regions', 'drop')})"
         else:
-            what = "they form one group with an empty region id (--outside-regions group)"
+            what = f"they form one group with an empty region id ({spell('outside_regions', 'group')})"
         warnings.warn(
             f"{missing} of {x.size} point(s) of {label} lie in no region of {region_label}; {what}.",
             UserWarning,
@@ -194,7 +194,7 @@ def attach_regions(points: PointLayer, join: RegionJoin) -> tuple[PointLayer, np
     """
     if join.field in points.attributes.columns:
         raise InputError(
-            f"{points.label} already has a field {join.field!r}, like the --region-id field of "
+            f"{points.label} already has a field {join.field!r}, like the {spell('region_id')} field of "
             f"{join.label}; rename one of them so that the groups are not confused."
         )
     keep = join.keep

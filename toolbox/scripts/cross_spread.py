@@ -5,27 +5,31 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .. import estimate, layers, tables
+from .. import estimate, tables
 from ..errors import InputError, ParameterError
 from ..layers import stream
 from . import _large
-from ._common import group_points, method_column, read_grouped
+from ._common import Places, group_points, method_column, read_grouped, read_measured
 
 
 def cross_spread(
     data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method, distance, crs,
-    where, engine, wide, batch_rows, dask_scheduler, progress=None,
+    where, engine, as_points, fill_spacing, regions, regions_layer, region_id, outside_regions, wide, batch_rows,
+    dask_scheduler, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """Mean distance between groups: every pair of one layer's groups, or groups of two layers."""
-    if to is None and not group_by:
+    places = Places.of(locals())  # --as-points applies to both layers, --regions to the first
+    if to is None and not group_by and regions is None:
         raise ParameterError(
-            "cross-spread on one layer needs --group-by (the groups to compare); or give a second layer with --to."
+            "cross-spread on one layer needs --group-by or --regions (the groups to compare); or give a "
+            "second layer with --to."
         )
     if to is None and (to_layer or to_group_by or to_weight):
         raise ParameterError("--to-layer, --to-group-by and --to-weight need --to.")
     large = dict(engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler)
-    parts = _large.large_parts(data, layer=layer, where=where, **large)
-    to_parts = None if to is None else _large.large_parts(to, layer=to_layer, where=None, **large)
+    whole = places.read_whole(data, batch_rows, dask_scheduler) or (to is not None and places.read_whole(to, None, None))
+    parts = None if whole else _large.large_parts(data, layer=layer, where=where, **large)
+    to_parts = None if to is None or whole else _large.large_parts(to, layer=to_layer, where=None, **large)
     if parts is not None or to_parts is not None:  # batch by batch, or on a cluster
         if parts is None:
             parts = stream.layer_parts(data, layer=layer, where=where, engine=engine)
@@ -36,12 +40,12 @@ def cross_spread(
             tolerance=tolerance, method=method, distance=distance, crs=crs, batch_rows=batch_rows,
             dask_scheduler=dask_scheduler,
         )  # fmt: skip
-        sums, keys, to_keys, units = read.sums, read.keys, read.to_keys, read.units
+        sums, keys, to_keys, units, made = read.sums, read.keys, read.to_keys, read.units, None
     else:
-        sums, keys, to_keys, units = _in_memory(
+        sums, keys, to_keys, units, made = _in_memory(
             data, layer=layer, group_by=group_by, weight=weight, to=to, to_layer=to_layer,
             to_group_by=to_group_by, to_weight=to_weight, tolerance=tolerance, method=method,
-            distance=distance, crs=crs, where=where, engine=engine, progress=progress,
+            distance=distance, crs=crs, where=where, engine=engine, places=places, progress=progress,
         )  # fmt: skip
     estimate.raise_for_notes(sums)
     n_from = len(keys)
@@ -64,23 +68,26 @@ def cross_spread(
             "units": units,
         }
     )
+    if made is not None:
+        table["as_points"] = made
     if not wide:
         return table
     return tables.wide_matrix(table)
 
 
 def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method,
-               distance, crs, where, engine, progress):  # fmt: skip
-    """Both layers read whole: the sums and the keys of the rows and of the columns."""
+               distance, crs, where, engine, places, progress):  # fmt: skip
+    """Both layers read whole: the sums, the keys of the rows and of the columns, units, how made."""
     first = read_grouped(
         data, layer=layer, group_by=group_by, weight=weight, where=where, engine=engine,
-        distance=distance, crs=crs, script="cross-spread",
+        distance=distance, crs=crs, script="cross-spread", places=places,
     )  # fmt: skip
     points, second = first.points, first
     if to is not None:
-        other = layers.read_points(
-            to, layer=to_layer, fields=[*to_group_by, *([to_weight] if to_weight else [])], engine=engine
-        )
+        other, _ = read_measured(
+            to, layer=to_layer, fields=[*to_group_by, *([to_weight] if to_weight else [])], where=None,
+            engine=engine, distance=distance, crs=crs, script="cross-spread", places=places, setup=first.setup,
+        )  # fmt: skip
         if (first.layer.crs is None) != (other.crs is None):
             raise InputError(
                 f"Only one of {first.layer.label} and {other.label} has a CRS, so their coordinates "
@@ -90,4 +97,4 @@ def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_w
         second = group_points(other, to_group_by, to_weight, first.setup, note=crs is None)
         points = points.join(second.points)
     sums = estimate.cross_sums(points, tolerance=tolerance, method=method, progress=progress)
-    return sums, first.groups.keys, second.groups.keys, first.setup.units
+    return sums, first.groups.keys, second.groups.keys, first.setup.units, first.made

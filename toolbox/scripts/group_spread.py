@@ -6,15 +6,17 @@ import pandas as pd
 
 from .. import estimate
 from . import _large
-from ._common import method_column, read_grouped
+from ._common import Places, finish_table, method_column, read_grouped
 
 
 def group_spread(
     data, *, layer, group_by, weight, tolerance, method, distance, crs, where, engine,
-    batch_rows, dask_scheduler, progress=None,
+    batch_rows, dask_scheduler, as_points, fill_spacing, regions, regions_layer, region_id, outside_regions,
+    output_on, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """One row per group: its pair-distance total, guaranteed interval and mean."""
-    parts = _large.large_parts(
+    places = Places.of(locals())
+    parts = None if places.read_whole(data, batch_rows, dask_scheduler) else _large.large_parts(
         data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler
     )
     if parts is not None:  # batch by batch, or partition by partition on a cluster
@@ -26,7 +28,7 @@ def group_spread(
     else:
         read = read_grouped(
             data, layer=layer, group_by=group_by, weight=weight, where=where, engine=engine,
-            distance=distance, crs=crs, script="group-spread",
+            distance=distance, crs=crs, script="group-spread", places=places,
         )  # fmt: skip
         sums = estimate.pair_sums(read.points, tolerance=tolerance, method=method, progress=progress)
         keys, units = read.groups.keys, read.setup.units
@@ -43,4 +45,4 @@ def group_spread(
     table["method"] = method_column(sums.method)
     table["directions"] = sums.directions
     table["units"] = units
-    return table
+    return table if parts is not None else finish_table(table, read, places)

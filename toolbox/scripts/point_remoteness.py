@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 
 from .. import estimate, layers
-from ..errors import GeometryError, InputError
+from ..errors import GeometryError, InputError, spell
 from . import _large
-from ._common import group_points
+from ._common import Places, frame_points, group_points, join_places
 
 #: new fields, at most 10 characters so that they survive a Shapefile
 NEW_FIELDS = ("remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n")
@@ -15,35 +15,54 @@ NEW_FIELDS = ("remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n")
 
 def point_remoteness(
     data, *, layer, group_by, weight, tolerance, method, distance, crs, where, engine,
-    batch_rows, dask_scheduler, progress=None,
+    batch_rows, dask_scheduler, as_points, fill_spacing, regions, regions_layer, region_id, outside_regions,
+    progress=None,
 ):  # fmt: skip
     """A copy of the layer with every feature's mean distance to the others of its group."""
-    _large.refuse_per_feature(
-        data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler
-    )
+    places = Places.of(locals())
+    if not places.read_whole(data, batch_rows, dask_scheduler):
+        _large.refuse_per_feature(
+            data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler
+        )
     frame, label = layers.read_layer(data, layer=layer, where=where, engine=engine)
-    taken = [f for f in NEW_FIELDS if f in frame.columns]
+    taken = [f for f in (*NEW_FIELDS, *([region_id] if regions is not None else ())) if f in frame.columns]
     if taken:
         raise InputError(
             f"{label} already has field(s) {', '.join(taken)}; rename them first so that nothing "
             "is overwritten."
         )
-    read = layers.points_of(frame, [*group_by, *([weight] if weight else [])], label)
+    fields = [*group_by, *([weight] if weight else [])]
+    read, setup = frame_points(frame, label, fields, places=places, distance=distance, crs=crs, script="point-remoteness")
     parts = np.bincount(read.feature, minlength=len(frame))
-    if (parts > 1).any():
+    if as_points != "fill" and (parts > 1).any():
         raise GeometryError(
             f"{int((parts > 1).sum())} MultiPoint feature(s) of {label} have several points, so "
-            "they have no single distance to the rest; split them into single points first."
+            f"they have no single distance to the rest; split them into single points first, or "
+            f"take them whole with {spell('as_points', 'fill')}."
         )
-    setup = estimate.distance_setup(
-        read.crs, read.label, distance=distance, target=crs, script="point-remoteness"
-    )
+    read, group_by, join, source = join_places(read, group_by, places, engine)
     grouped = group_points(read, group_by, weight, setup)
     points, n_groups = grouped.points, grouped.groups.count
-    sums = estimate.point_sums(points, tolerance=tolerance, method=method, progress=progress)
+    # one entry per input feature that has points (all of them, unless --outside-regions drop)
+    present, feature_of = np.unique(source, return_inverse=True)
+    codes = np.zeros(present.size, dtype=np.int64)
+    codes[feature_of] = points.groups
+    if (codes[feature_of] != points.groups).any():
+        raise GeometryError(
+            f"Some features of {label} lie in several regions of {join.label}, so they have no one "
+            f"group to be compared with; use {spell('as_points', 'inside')} (a point on each feature) "
+            "to place each feature in one region."
+        )
+    if as_points == "fill":  # a feature is many pieces: sums per feature
+        sums = estimate.feature_sums(
+            points, feature_of, present.size, read.share, tolerance=tolerance, method=method, progress=progress
+        )
+        w, rows = np.bincount(feature_of, points.weight_array(), present.size), present
+    else:  # one point per feature
+        sums = estimate.point_sums(points, tolerance=tolerance, method=method, progress=progress)
+        w, rows, codes = points.weight_array(), present[feature_of], points.groups
     estimate.raise_for_notes(sums)
-    # the group's weighted mean pair distance from the same sums: Σ_i w_i R_i = 2·D_g
-    w, codes = points.weight_array(), points.groups
+    # the group's weighted mean distance between features from the same sums: Σ_i w_i R_i = 2·D_g
     with np.errstate(invalid="ignore", divide="ignore"):
         both = np.bincount(codes, np.nan_to_num(w * sums.total), n_groups) / 2
         pair_weight = np.bincount(codes, w * sums.other_weight, n_groups) / 2
@@ -57,8 +76,13 @@ def point_remoteness(
         ("remote_idx", index),
     ):
         column = np.full(len(frame), np.nan)
-        column[read.feature] = values
+        column[rows] = values
         out[name] = column
-    feature_codes = grouped.groups.codes
-    out["group_n"] = np.bincount(feature_codes, minlength=n_groups)[feature_codes]
+    group_n = np.zeros(len(frame), dtype=np.int64)
+    group_n[rows] = np.bincount(codes, minlength=n_groups)[codes]
+    out["group_n"] = group_n
+    if join is not None:  # which region each feature was compared within (empty: none, or left out)
+        region = np.full(len(frame), None, dtype=object)
+        region[source] = read.attributes[region_id].astype(object).where(read.attributes[region_id].notna(), None)
+        out[region_id] = region
     return out
