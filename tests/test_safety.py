@@ -1059,6 +1059,28 @@ def test_output_into_the_input_geopackage_keeps_its_layers(tmp_path, capfd, smal
     assert sorted(os.listdir(tmp_path)) == ["island.gpkg"]
 
 
+def test_overwriting_the_only_table_keeps_other_sqlite_tables(tmp_path, capfd, small_inputs):
+    # A GeoPackage holding only the table being replaced is written afresh (faster than
+    # dropping its old rows); one that also holds a table of the user's own, even one that
+    # GeoPackage does not list as a layer, keeps that table.
+    out = tmp_path / "result.gpkg"
+    args = ["group-spread", str(small_inputs["gpkg"][0]), "--layer", "homes", "--group-by", "district",
+            "--output", str(out), "--quiet"]  # fmt: skip
+    assert main(args) == 0, capfd.readouterr().err
+    assert main([*args, "--overwrite"]) == 0, capfd.readouterr().err
+    assert [str(r[0]) for r in pyogrio.list_layers(out)] == ["group_spread"]
+    with sqlite3.connect(out) as db:  # sqlite3 from the standard library, not our writer
+        db.execute("CREATE TABLE my_notes (note TEXT)")
+        db.execute("INSERT INTO my_notes VALUES ('kept')")
+    db.close()
+    assert main([*args, "--overwrite"]) == 0, capfd.readouterr().err
+    with sqlite3.connect(out) as db:
+        assert db.execute("SELECT note FROM my_notes").fetchall() == [("kept",)]
+    db.close()
+    table = pyogrio.read_dataframe(out, layer="group_spread")
+    assert len(table) > 0 and "total_dist" in table.columns
+
+
 # --------------------------------------------------------------------------------------------
 # no file outside the named output
 

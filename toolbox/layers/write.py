@@ -208,6 +208,47 @@ def _gpkg_layers(path: Path) -> list[str]:
         ) from exc
 
 
+def _holds_only(path: Path, layer_name: str) -> bool:
+    """Whether a GeoPackage's only table of its own (not GeoPackage or SQLite bookkeeping, nor
+    the spatial index) is ``layer_name``; False if that cannot be told."""
+    import sqlite3
+
+    own = layer_name.lower()
+    try:
+        with contextlib.closing(sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)) as db:
+            names = [str(row[0]).lower() for row in db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")]
+    except sqlite3.Error:
+        return False
+    bookkeeping = ("gpkg_", "gpkgext_", "sqlite_", f"rtree_{own}_")
+    return [n for n in names if not n.startswith(bookkeeping)] == [own]
+
+
+@contextlib.contextmanager
+def _unsynced_sqlite() -> Iterator[None]:
+    """SQLite without its journal and per-transaction syncs while a temporary file is written.
+
+    The file is new and private until it is renamed into place: a failure discards it whole,
+    so a rollback journal protects nothing, and :func:`_flush_to_disk` syncs it once before
+    the rename.
+    """
+    options = {"OGR_SQLITE_SYNCHRONOUS": "OFF", "OGR_SQLITE_JOURNAL": "OFF"}
+    previous = {key: pyogrio.get_gdal_config_option(key) for key in options}
+    pyogrio.set_gdal_config_options(options)
+    try:
+        yield
+    finally:
+        pyogrio.set_gdal_config_options(previous)
+
+
+def _flush_to_disk(path: Path) -> None:
+    """Sync a written file to disk before it is renamed over the output."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
 def _umask() -> int:
     mask = os.umask(0o022)
     os.umask(mask)
@@ -517,7 +558,8 @@ def write_output(
     ``.json`` (unless ``sidecar`` is False).
 
     A GeoPackage output gets the table or layer and keeps every other layer it had: it is
-    written into a copy beside the file, which then replaces it in one rename. Other formats
+    written into a copy beside the file (a new file, if the old one holds only the table being
+    replaced), synced to disk, which then replaces it in one rename. Other formats
     are written under a temporary name (a Shapefile's parts in a temporary folder) and renamed.
     A failure leaves no partial output and the previous file as it was.
     """
@@ -565,7 +607,9 @@ def _write_once(
         before = _signature(target)
         text = None if record is None else json.dumps(record)
         if kind == "gpkg":
-            if before is not None:
+            # a file holding nothing but the table being replaced is written afresh: dropping
+            # millions of old rows from a copy costs more than writing the new ones
+            if before is not None and not _holds_only(target, layer_name):
                 shutil.copyfile(target, tmp)
                 shutil.copymode(target, tmp)
             extra = {}
@@ -573,7 +617,10 @@ def _write_once(
                 extra = dict(
                     layer_options={"DESCRIPTION": _one_line(record)}, layer_metadata={PROVENANCE_KEY: text}
                 )
-            pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG", **extra)
+            with _unsynced_sqlite():
+                # Arrow's columnar write: one WKB encoding of the geometry, no per-row Python
+                pyogrio.write_dataframe(frame, tmp, layer=layer_name, driver="GPKG", use_arrow=True, **extra)
+            _flush_to_disk(tmp)
         elif kind == "csv":
             tmp.write_text(csv_text(frame), encoding="utf-8")
         elif kind == "parquet":
