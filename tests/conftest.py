@@ -46,6 +46,7 @@ RESULT_COLUMNS = [
     "method",
     "directions",
     "units",
+    "note",  # issue 10: why a group could not be computed, else empty
 ]
 
 #: Input formats every end-to-end test runs on: suffix -> OGR driver.

@@ -32,7 +32,7 @@ from toolbox.cli import main
 
 #: the long table's columns, exactly, in this order (issue 3)
 LONG_COLUMNS = ["from_group", "to_group", "n_from", "n_to", "total_dist", "total_lo", "total_hi", "mean_dist",
-                "rel_bound", "method", "directions", "units"]
+                "rel_bound", "method", "directions", "units", "note"]  # note: issue 10
 X0, Y0 = 500_000.0, 6_120_000.0
 SIZES = (1, 2, 3, 64, 65, 500, 3000)
 TOLERANCES = (0.0, 0.01, 1e-4)

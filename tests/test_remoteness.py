@@ -28,7 +28,7 @@ from scipy.spatial.distance import cdist, pdist
 import toolbox
 from toolbox.cli import main
 
-NEW_FIELDS = ["remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n"]  # issue 3
+NEW_FIELDS = ["remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n", "note"]  # issues 3, 10
 HOME_FIELDS = ["zone", "tenure", "pop", "label"]  # the fields of conftest.make_homes
 X0, Y0 = 500_000.0, 6_120_000.0  # UTM-sized offsets (EPSG:32705 near the fixture layers)
 

@@ -24,6 +24,8 @@ from .errors import (
     OutputError,
     PairspreadError,
     ParameterError,
+    PartialResultError,
+    PartialResultWarning,
 )
 
 #: public name -> the module that defines it, imported on first access
@@ -122,4 +124,6 @@ __all__ = [
     "GeometryError",
     "OutputError",
     "ManifestError",
+    "PartialResultError",
+    "PartialResultWarning",
 ]

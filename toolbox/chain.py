@@ -244,7 +244,8 @@ def _in_chain_words(function):
     def wrapped(*args, **kwargs):
         if current_caller() == "chain":
             return function(*args, **kwargs)
-        with speaking("chain", {"overwrite": spell("overwrite", True), "quiet": spell("quiet", True)}):
+        own = {name: spell(name, True) for name in ("overwrite", "strict", "quiet")}
+        with speaking("chain", own):
             return function(*args, **kwargs)
 
     return wrapped
@@ -256,6 +257,7 @@ def load_chain(
     *,
     sets: Sequence[str] | Mapping[str, Any] = (),
     overwrite: bool = False,
+    strict: bool = False,
     name: str | None = None,
 ) -> Chain:
     """Read and check a whole chain; nothing runs and nothing is written.
@@ -268,6 +270,9 @@ def load_chain(
         Values replacing those of the file (paths relative to the current folder).
     overwrite : bool
         Let every output replace an existing file or table (as each step's ``overwrite``).
+    strict : bool
+        Stop at the first step with a group that cannot be computed, before its outputs are
+        written (as each step's ``strict``).
     name : str, optional
         How messages name a chain given as a dict.
 
@@ -331,8 +336,9 @@ def load_chain(
             elif p is not None and (_is_input(p) or _is_output(p)):
                 base = Path.cwd() if (step_name, pname) in from_command_line else folder
                 params[pname] = _resolve_path(value, base)
-        if overwrite and "overwrite" in declared:
-            params["overwrite"] = True
+        for switch, on in (("overwrite", overwrite), ("strict", strict)):
+            if on and switch in declared:
+                params[switch] = True
         steps[step_name] = Step(step_name, script, params, str(entry.get("about", "")), tuple(after))
     ordered = _order(steps, place)
     _check_steps(ordered, steps, place)
@@ -462,6 +468,7 @@ def run_chain(
     *,
     sets: Sequence[str] | Mapping[str, Any] = (),
     overwrite: bool = False,
+    strict: bool = False,
     dry_run: bool = False,
     quiet: bool = True,
     report=None,
@@ -476,6 +483,11 @@ def run_chain(
         Values replacing those of the chain, as ``--set`` does on the command line.
     overwrite : bool
         Let every output replace an existing file or table.
+    strict : bool
+        All or nothing per step: a step with a group that cannot be computed raises
+        :class:`~toolbox.errors.PartialResultError` before its outputs are written, and the
+        chain stops there (outputs of earlier steps stay). Otherwise such a step warns once
+        (:class:`~toolbox.errors.PartialResultWarning`) and the chain goes on.
     dry_run : bool
         Check everything and return ``{}`` without running a step.
     quiet : bool
@@ -503,7 +515,7 @@ def run_chain(
     """
     from .runner import run_script
 
-    chain = load_chain(path_or_dict, sets=sets, overwrite=overwrite)
+    chain = load_chain(path_or_dict, sets=sets, overwrite=overwrite, strict=strict)
     if dry_run:
         return {}
     place = _Place(chain.source)
@@ -532,7 +544,7 @@ def command(args, *, print_table) -> int:
 
 def _command(args, *, print_table) -> int:
     if args.dry_run:
-        print(plan_text(load_chain(args.file, sets=args.sets, overwrite=args.overwrite)))
+        print(plan_text(load_chain(args.file, sets=args.sets, overwrite=args.overwrite, strict=args.strict)))
         return 0
     last: dict[str, Any] = {}
 
@@ -541,7 +553,9 @@ def _command(args, *, print_table) -> int:
         if written is not None and written != "standard output" and not args.quiet:
             print(f"pairspread: step {step.name!r}: wrote {len(result)} row(s) to {written}", file=sys.stderr)
 
-    results = run_chain(args.file, sets=args.sets, overwrite=args.overwrite, quiet=args.quiet, report=report)
+    results = run_chain(
+        args.file, sets=args.sets, overwrite=args.overwrite, strict=args.strict, quiet=args.quiet, report=report
+    )
     if results and last.get("written") is None:
         print_table(last["result"])
     return 0

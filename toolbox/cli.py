@@ -64,9 +64,23 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
         )
 
 
+#: the exit statuses of every command (README "Exit status" says the same)
+EXIT_STATUSES = """exit status:
+  0    the script or chain ran; every output was written
+  1    an unexpected failure (a bug or a library error); --debug shows the traceback
+  2    a mistake in the command, a parameter, an input, an output or a chain file; nothing written
+  3    --strict, and a group could not be computed as asked (see its note); nothing written
+  130  interrupted (Ctrl-C); no output was written
+  141  standard output was closed early (e.g. piped into head)
+"""
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(
-        prog="pairspread", description="Distances between points, per group, with guaranteed bounds."
+        prog="pairspread",
+        description="Distances between points, per group, with guaranteed bounds.",
+        epilog=EXIT_STATUSES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--version", action="version", version=f"pairspread {__version__}")
     parser.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
@@ -89,6 +103,12 @@ def build_parser() -> argparse.ArgumentParser:
         "--dry-run", action="store_true", help="Check the chain and print the plan; run nothing."
     )
     chain.add_argument("--overwrite", action="store_true", help="Let every output replace an existing one.")
+    chain.add_argument(
+        "--strict",
+        action="store_true",
+        help="Stop at the first step with a group that cannot be computed, before its outputs are "
+        "written (exit status 3).",
+    )
     chain.add_argument("--quiet", action="store_true", help="No progress bars and no messages on success.")
     chain.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")
     for script in scripts().values():
@@ -100,7 +120,13 @@ def build_parser() -> argparse.ArgumentParser:
                 stacklevel=2,
             )
             continue
-        sp = sub.add_parser(script.name, help=script.summary, description=script.summary)
+        sp = sub.add_parser(
+            script.name,
+            help=script.summary,
+            description=script.summary,
+            epilog=EXIT_STATUSES,
+            formatter_class=argparse.RawDescriptionHelpFormatter,
+        )
         for p in script.params:
             _add_param(sp, p)
         sp.add_argument("--debug", action="store_true", help="Show the full traceback on errors.")

@@ -29,6 +29,8 @@ __all__ = [
     "GeometryError",
     "OutputError",
     "ManifestError",
+    "PartialResultError",
+    "PartialResultWarning",
 ]
 
 
@@ -76,6 +78,23 @@ class OutputError(PairspreadError):
 
 class ManifestError(PairspreadError):
     """A manifest (ours or a third-party pack's) is malformed."""
+
+
+class PartialResultError(PairspreadError):
+    """Some groups could not be computed, and ``strict`` asked for all or nothing.
+
+    Nothing was written. The command line exits with status 3 (``--strict``).
+    """
+
+    exit_code = 3
+
+
+class PartialResultWarning(UserWarning):
+    """Some groups could not be computed: their rows have empty distances and a ``note``.
+
+    The other groups are complete. Turn it into :class:`PartialResultError` with
+    ``strict=True`` (``--strict``), or into an exception of its own with :mod:`warnings` filters.
+    """
 
 
 _UNSET = object()

@@ -10,9 +10,10 @@ import contextlib
 import inspect
 import os
 import sys
+import warnings
 from typing import Any
 
-from .errors import ParameterError, current_caller, speaking, spell
+from .errors import ParameterError, PartialResultError, PartialResultWarning, current_caller, speaking, spell
 from .manifest import DATASET_KINDS, Script, get_script, validate
 from .progress import ProgressLine
 
@@ -63,6 +64,47 @@ def _read_piped(script: Script, values: dict[str, Any]) -> dict[str, Any]:
     from . import layers
 
     return {**values, piped[0].name: layers.read_stdin(chosen)}
+
+
+#: groups named in the one warning about groups that could not be computed
+_NAMED = 10
+
+
+def _check_notes(script: Script, result: Any, strict: bool) -> dict[str, str]:
+    """The groups that could not be computed: one warning, or with ``strict`` an error.
+
+    Scripts that can leave a group uncomputed declare ``strict`` and keep {group: note} in the
+    result's ``attrs`` (:func:`toolbox.tables.add_notes`). Called before anything is written,
+    so a strict run that fails writes nothing.
+    """
+    if "strict" not in script.param_map:
+        return {}
+    from .tables import NOTES
+
+    notes = dict(getattr(result, "attrs", {}).get(NOTES) or {})
+    if not notes:
+        return {}
+    names = list(notes)
+    shown = ", ".join(repr(n) for n in names[:_NAMED])
+    if len(names) > _NAMED:
+        shown += f" and {len(names) - _NAMED} more"
+    where = (
+        "a note saying why in the note column"
+        if "note" in getattr(result, "columns", ())
+        else "the notes saying why in the output's provenance record (attrs['notes'] in Python)"
+    )
+    head = f"{script.name}: {len(names)} group(s) could not be computed: {shown}"
+    reason = f"{names[0]!r}: {notes[names[0]]}"
+    if strict:
+        raise PartialResultError(f"{head}, so nothing was written ({spell('strict', True)}). {reason}")
+    how = "stop with exit status 3" if current_caller() == "cli" else "raise PartialResultError"
+    warnings.warn(
+        f"{head}; their rows have empty distances and {where}, and every other group is complete. "
+        f"{reason} Pass {spell('strict', True)} to {how} instead.",
+        PartialResultWarning,
+        stacklevel=4,
+    )
+    return notes
 
 
 def run_script(
@@ -123,13 +165,14 @@ def _run_script(
         line.phase("reading")
         with thread_limit(values.get("threads")):
             result = function(**call)
+        notes = _check_notes(script, result, bool(values.get("strict")))
         written = None
         if output is not None:
             if output == "-":  # the table goes to the terminal too: clear the line first
                 line.close()
             else:
                 line.phase("writing")
-            record = layers.provenance(script.name, values)
+            record = layers.provenance(script.name, values, made_in=made_in, notes=notes)
             written = layers.write_output(result, output, record=record, sidecar=sidecar, **where)
     finally:
         line.close()

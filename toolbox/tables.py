@@ -44,6 +44,10 @@ __all__ = [
     "feature_ids",
     "feature_names",
     "name_features",
+    "NOTES",
+    "add_notes",
+    "noted_groups",
+    "noted_pairs",
 ]
 
 #: how a null group value is written where text is needed (a label part, a column name, print)
@@ -144,6 +148,8 @@ def wide_matrix(long: pd.DataFrame, values: str = "mean_dist") -> pd.DataFrame:
     wide.insert(0, "from_group", pd.Series([None if _is_null(v) else v for v in row_values], dtype=object))
     mapping = {name: (None if _is_null(v) else v) for name, v in zip(names, col_values, strict=True)}
     wide.attrs["wide_columns"] = mapping
+    if NOTES in long.attrs:  # the matrix has no room for a note per cell: they stay in attrs
+        wide.attrs[NOTES] = dict(long.attrs[NOTES])
     renamed = [f"{v!r} → {name!r}" for name, v in mapping.items() if v is not None and name != str(v)]
     if renamed:
         warnings.warn(
@@ -154,6 +160,69 @@ def wide_matrix(long: pd.DataFrame, values: str = "mean_dist") -> pd.DataFrame:
             stacklevel=2,
         )
     return wide
+
+
+#: key of ``attrs`` under which a result keeps {affected group: why it could not be computed},
+#: for the runner's one warning, ``strict`` and the output's provenance
+NOTES = "notes"
+
+
+def add_notes(table: pd.DataFrame, row_notes: Iterable[Any], affected: dict[str, str]) -> pd.DataFrame:
+    """Give ``table`` its ``note`` column (null where the row was computed) and ``attrs["notes"]``.
+
+    ``affected`` names each group that could not be computed with its note (see
+    :func:`noted_groups`); the runner turns it into one warning, or refuses with ``strict``.
+    It is set even when empty, so a table made from an earlier result never carries stale notes.
+
+    Examples
+    --------
+    >>> t = add_notes(pd.DataFrame({"zone": ["a", "b"]}), ["", "too wide"], {"b": "too wide"})
+    >>> t["note"].tolist(), t.attrs["notes"]
+    ([None, 'too wide'], {'b': 'too wide'})
+    """
+    table["note"] = pd.Series(
+        [n if isinstance(n, str) and n else None for n in row_notes], index=table.index, dtype=object
+    )
+    table.attrs[NOTES] = dict(affected)
+    return table
+
+
+def noted_groups(labels: Sequence[Any], notes: Sequence[str], codes: Sequence[int] | None = None) -> dict[str, str]:
+    """{group label: its note} for every group with a note; ``codes`` maps entries to groups.
+
+    Examples
+    --------
+    >>> noted_groups(["north", None], ["", "too wide"])
+    {'(null)': 'too wide'}
+    >>> noted_groups(["north", "south"], ["x", "", "x"], codes=[0, 1, 0])
+    {'north': 'x'}
+    """
+    codes = range(len(notes)) if codes is None else codes
+    found: dict[str, str] = {}
+    for code, note in zip(codes, notes, strict=True):
+        if isinstance(note, str) and note:
+            found.setdefault(_text(labels[code]), str(note))
+    return found
+
+
+def noted_pairs(labels: Sequence[Any], notes: np.ndarray) -> dict[str, str]:
+    """{label: note} for a G × G matrix of notes (cross sums), naming what was not computed.
+
+    A group whose own pairs have a note is named once (every row it is in has a note); a
+    pair of groups that could each be computed, but not together, is named ``"A ↔ B"``.
+
+    Examples
+    --------
+    >>> notes = np.array([["wide", "wide", "wide"], ["wide", "", "far"], ["wide", "far", ""]])
+    >>> noted_pairs(["world", "town", "port"], notes)
+    {'world': 'wide', 'town ↔ port': 'far'}
+    """
+    own = [bool(notes[g, g]) for g in range(len(labels))]
+    found = noted_groups(labels, [notes[g, g] for g in range(len(labels))])
+    for a, b in zip(*np.nonzero(np.triu(notes.astype(bool), 1)), strict=True):
+        if not (own[a] or own[b]):
+            found.setdefault(f"{_text(labels[a])} ↔ {_text(labels[b])}", str(notes[a, b]))
+    return found
 
 
 def _text_columns(frame: pd.DataFrame) -> list[str]:

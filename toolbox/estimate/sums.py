@@ -449,6 +449,7 @@ def _geodesic_cross(points, tolerance, method, m0, progress, threads) -> CrossPa
                 )
                 # each group on its own may still be fine: the diagonal comes from its own frame
                 within = pair_sums(points, tolerance=tolerance, method=method, threads=threads)
+                _without_refused(points, within, out, tolerance, method, m0, threads)
                 return _cross_result(within, out)
             use_exact = True
     if use_exact:
@@ -462,6 +463,33 @@ def _geodesic_cross(points, tolerance, method, m0, progress, threads) -> CrossPa
     out.put(..., *folded, exact=False, directions=r.directions)
     out.clear(np.isnan(r.total))
     return _cross_result(None, out, points)
+
+
+def _without_refused(points, within, out: _Table, tolerance, method, m0, threads) -> None:
+    """Groups refused on their own sink only their own rows: the others are compared without them.
+
+    Their rows get their own note; the pairs of the other groups come from the same geodesic
+    cross sums over those groups alone (which may still be too wide together: then they keep
+    the note of the combined set).
+    """
+    refused = np.flatnonzero(np.asarray(within.note, dtype=bool))
+    kept = np.setdiff1d(np.arange(points.n_groups), refused)
+    for g in refused:
+        out.note[g, :] = out.note[:, g] = within.note[g]
+    if refused.size == 0 or kept.size == 0:
+        return
+    code_of = np.full(points.n_groups, -1, dtype=np.int64)
+    code_of[kept] = np.arange(kept.size)
+    sel = np.isin(points.groups, kept)
+    sub = Points.build(
+        points.x[sel], points.y[sel], code_of[points.groups[sel]], kept.size,
+        None if points.weights is None else points.weights[sel], distance=points.distance,
+        names=lambda code: points.name(kept[code]),
+    )  # fmt: skip
+    r = _geodesic_cross(sub, tolerance, method, m0, None, threads)
+    block = np.ix_(kept, kept)
+    for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
+        getattr(out, name)[block] = getattr(r, name)
 
 
 def _cross_result(within, out: _Table, points=None) -> CrossPairSums:

@@ -426,7 +426,7 @@ def _crs_text(data, layer) -> str | None:
     return None
 
 
-def provenance(script: str, values: dict) -> dict:
+def provenance(script: str, values: dict, *, made_in: dict | None = None, notes: dict | None = None) -> dict:
     """How an output was made: script, parameters, input and its CRS, version and date.
 
     Parameters
@@ -435,6 +435,10 @@ def provenance(script: str, values: dict) -> dict:
         Script name, e.g. ``"group-spread"``.
     values : dict
         The script's validated parameter values.
+    made_in : dict, optional
+        ``{"chain": path, "step": name}`` when a chain's step made the output.
+    notes : dict, optional
+        {group: note} for the groups that could not be computed (their distances are empty).
 
     Returns
     -------
@@ -446,6 +450,8 @@ def provenance(script: str, values: dict) -> dict:
     >>> record = provenance("group-spread", {"data": "homes.gpkg", "tolerance": 0.01})
     >>> record["script"], record["parameters"]["tolerance"], record["input"]
     ('group-spread', 0.01, 'homes.gpkg')
+    >>> provenance("group-spread", {}, made_in={"chain": "steps.toml", "step": "spread"})["chain"]
+    {'file': 'steps.toml', 'step': 'spread'}
     """
     from importlib.metadata import PackageNotFoundError, version
 
@@ -455,7 +461,7 @@ def provenance(script: str, values: dict) -> dict:
         made_by = "pairspread (version unknown)"
     skip = {"output", "overwrite", "quiet", "no_sidecar", "data"}
     data = values.get("data")
-    return {
+    record = {
         "made_by": made_by,
         "script": script,
         "created": datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds"),
@@ -466,14 +472,22 @@ def provenance(script: str, values: dict) -> dict:
         "weight": values.get("weight"),
         "parameters": {k: _plain(v) for k, v in values.items() if k not in skip and not _unset(v)},
     }
+    if made_in:
+        record["chain"] = {"file": _plain(made_in.get("chain")), "step": made_in.get("step")}
+    if notes:
+        record["notes"] = dict(notes)
+    return record
 
 
 def _one_line(record: dict) -> str:
     """The provenance record as the one line a GeoPackage table description holds."""
     layer = f", layer {record['layer']}" if record.get("layer") else ""
+    chain = record.get("chain")
+    step = f", step {chain['step']!r} of chain {chain['file']}" if chain else ""
+    notes = f"; {len(record['notes'])} group(s) not computed" if record.get("notes") else ""
     return (
         f"{record['script']} by {record['made_by']} on {record['created']} from "
-        f"{record['input']}{layer} (tolerance {record.get('tolerance')}); details in gpkg_metadata"
+        f"{record['input']}{layer} (tolerance {record.get('tolerance')}){step}{notes}; details in gpkg_metadata"
     )
 
 

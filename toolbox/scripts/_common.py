@@ -234,7 +234,9 @@ def finish_table(table: pd.DataFrame, grouped: Grouped, places: Places):
     if grouped.made is not None:
         table["as_points"] = grouped.made
     if places.output_on == "regions":
-        return region_layers.onto_regions(table, grouped.join)
+        layer = region_layers.onto_regions(table, grouped.join)
+        layer.attrs.update(table.attrs)  # the notes (tables.add_notes) go with the rows
+        return layer
     return table
 
 

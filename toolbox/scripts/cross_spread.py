@@ -47,7 +47,6 @@ def cross_spread(
             to_group_by=to_group_by, to_weight=to_weight, tolerance=tolerance, method=method,
             distance=distance, crs=crs, where=where, engine=engine, places=places, progress=progress,
         )  # fmt: skip
-    estimate.raise_for_notes(sums)
     n_from = len(keys)
     rows = np.arange(n_from)
     cols = np.arange(n_from, sums.n_points.size) if to is not None else rows
@@ -68,6 +67,8 @@ def cross_spread(
             "units": units,
         }
     )
+    labels = [*tables.group_labels(keys), *(tables.group_labels(to_keys) if to is not None else [])]
+    tables.add_notes(table, sums.note[a, b], tables.noted_pairs(labels, sums.note))
     if made is not None:
         table["as_points"] = made
     if not wide:

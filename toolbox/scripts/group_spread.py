@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from .. import estimate
+from .. import estimate, tables
 from . import _large
 from ._common import Places, finish_table, method_column, read_grouped
 
@@ -32,7 +32,6 @@ def group_spread(
         )  # fmt: skip
         sums = estimate.pair_sums(read.points, tolerance=tolerance, method=method, progress=progress)
         keys, units = read.groups.keys, read.setup.units
-    estimate.raise_for_notes(sums)
     table = keys.copy()
     table["n_points"] = sums.n_points
     table["weight_sum"] = sums.weight_sum
@@ -45,4 +44,5 @@ def group_spread(
     table["method"] = method_column(sums.method)
     table["directions"] = sums.directions
     table["units"] = units
+    tables.add_notes(table, sums.note, tables.noted_groups(tables.group_labels(keys), sums.note))
     return table if parts is not None else finish_table(table, read, places)

@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from .. import estimate, layers
+from .. import estimate, layers, tables
 from ..errors import GeometryError, InputError, spell
 from . import _large
 from ._common import Places, frame_points, group_points, join_places
 
 #: new fields, at most 10 characters so that they survive a Shapefile
-NEW_FIELDS = ("remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n")
+NEW_FIELDS = ("remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n", "note")
 
 
 def point_remoteness(
@@ -61,7 +61,6 @@ def point_remoteness(
     else:  # one point per feature
         sums = estimate.point_sums(points, tolerance=tolerance, method=method, progress=progress)
         w, rows, codes = points.weight_array(), present[feature_of], points.groups
-    estimate.raise_for_notes(sums)
     # the group's weighted mean distance between features from the same sums: Σ_i w_i R_i = 2·D_g
     with np.errstate(invalid="ignore", divide="ignore"):
         both = np.bincount(codes, np.nan_to_num(w * sums.total), n_groups) / 2
@@ -85,4 +84,7 @@ def point_remoteness(
         region = np.full(len(frame), None, dtype=object)
         region[source] = read.attributes[region_id].astype(object).where(read.attributes[region_id].notna(), None)
         out[region_id] = region
-    return out
+    notes = np.full(len(frame), "", dtype=object)
+    notes[rows] = sums.note
+    labels = tables.group_labels(grouped.groups.keys)
+    return tables.add_notes(out, notes, tables.noted_groups(labels, sums.note, codes))

@@ -7,7 +7,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .. import estimate, grouping, layers
+from .. import estimate, grouping, layers, tables
 from ..errors import InputError, ParameterError
 from ..kernels.energy import check_permutations, holm_adjust
 
@@ -98,8 +98,6 @@ def spread_contrast(
         if column not in table:
             table[column] = np.nan
     tested = int(table["p_value"].notna().sum())
-    if tested < len(table):
-        warnings.warn(f"{len(table) - tested} of {len(table)} test(s) could not be computed; see the note column.", UserWarning, stacklevel=2)
     table["p_adjusted"] = holm_adjust(table["p_value"].to_numpy(dtype=float))
     table["adjustment"] = f"Holm over {tested} tests" if tested > 1 else "none (one test)"
     table["permutations"], table["seed"], table["units"] = permutations, seed, setup.units
@@ -108,7 +106,8 @@ def spread_contrast(
              "p_adjusted", "adjustment", "permutations", "seed", "method", "directions", "units", "note"]  # fmt: skip
     table["method"] = table["method"].astype("string")
     table["directions"] = table["directions"].astype("Int64")
-    return table[order]
+    table = table[order].copy()
+    return tables.add_notes(table, table["note"], tables.noted_groups(tables.group_labels(groups.keys), table["note"]))
 
 
 def _problem(names, counts, weights, what):
