@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import io
+import json
 import math
 import os
 import re
@@ -447,6 +448,9 @@ def test_shapefile_output_with_a_long_unicode_field_name(tmp_path, capfd):
     shortened = [c for c in far.columns if "quartier_é".startswith(c) and c != "quartier_é"]
     assert len(shortened) == 1 and len(shortened[0].encode("utf-8")) <= 10, list(far.columns)
     assert far[shortened[0]].tolist() == frame["quartier_é"].tolist()
+    # the mapping is reported in the provenance sidecar too (issue 10)
+    record = json.loads(Path(f"{out}.json").read_text(encoding="utf-8"))
+    assert record["shapefile_fields"] == {"quartier_é": shortened[0]}
     assert {"remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n"} <= set(far.columns)
 
 

@@ -11,6 +11,7 @@ import os
 import re
 import shutil
 import signal
+import struct
 import tempfile
 import threading
 import time
@@ -500,10 +501,30 @@ def _add_parquet_metadata(path: Path, record: dict) -> None:
     pq.write_table(table.replace_schema_metadata(metadata), path)
 
 
+def _dbf_complete(dbf: Path) -> bool:
+    """Whether a .dbf file holds every record its header declares.
+
+    GDAL's Shapefile writer does not always report a short write of the .dbf part (a file-size
+    limit, a full disk), and reading back the layer's info does not notice it either.
+    """
+    with open(dbf, "rb") as f:
+        head = f.read(12)
+    if len(head) < 12:
+        return False
+    count, header, record = struct.unpack("<IHH", head[4:12])  # dBASE header (common practice)
+    return dbf.stat().st_size >= header + count * record
+
+
 def _check_written(tmp: Path, kind: str, rows: int, fields: Sequence[str], layer_name: str, path: str) -> None:
     """Read back what was written: some writers ignore a failed write (a full disk) on close."""
     if kind in ("csv", "parquet"):
         return
+    dbf = tmp.with_suffix(".dbf")
+    if kind == "shp" and dbf.exists() and not _dbf_complete(dbf):
+        raise OutputError(
+            f"Writing {path!r} failed: its .dbf part (the attribute table) was cut short; nothing "
+            "was written." + _disk_cause(tmp.parent)
+        )
     try:
         info = pyogrio.read_info(tmp, layer=layer_name if kind == "gpkg" else None)
     except Exception as exc:
@@ -653,6 +674,8 @@ def _write_once(
                     UserWarning,
                     stacklevel=2,
                 )
+            if renamed and record is not None:  # the sidecar keeps the mapping
+                record = {**record, "shapefile_fields": renamed}
             out = frame.rename(columns=renamed)
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
         _check_written(tmp, kind, len(frame), [str(f) for f in fields], layer_name, path)
