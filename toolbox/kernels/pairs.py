@@ -217,12 +217,19 @@ def _projected_rows(cx, cy, cw, valid, n, cos_t, sin_t) -> np.ndarray:
         coef = np.where(tail, 0.0, 2 * rank - n[:, None] + 1)
     else:
         wsum = cw.sum(axis=1)[:, None]
+    padded = not valid.all()  # one group (the tight-tolerance case) has no padding to mask
+    # the projection goes into the same two buffers every direction: with hundreds of
+    # directions, fresh arrays would cost as much as the sorts
+    p, part = np.empty_like(cx), np.empty_like(cx)
     for c, s_ in zip(cos_t, sin_t, strict=True):
-        p = cx * c + cy * s_
-        p[~valid] = np.inf
+        np.multiply(cx, c, out=p)
+        p += np.multiply(cy, s_, out=part)
+        if padded:
+            p[~valid] = np.inf
         if cw is None:
             p.sort(axis=1)
-            p[tail] = 0.0
+            if padded:
+                p[tail] = 0.0
             out += np.einsum("gi,gi->g", coef, p)
         else:
             order = np.argsort(p, axis=1)
