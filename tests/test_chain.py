@@ -146,6 +146,24 @@ BROKEN = {
         'script = "group-spread"\ngroup_by = "zone"',
         r"step 'last': unknown key 'group_by'.*parameters go under params",
     ),
+    # names checked against the input files themselves, before any step runs (issue 10)
+    "unknown layer": (
+        'script = "group-spread"\nparams = { data = "island.gpkg", layer = "hmes", group_by = "zone" }',
+        r"step 'last': layer: .*island\.gpkg' has no layer 'hmes'; did you mean 'homes'\?",
+    ),
+    "unknown group field": (
+        'script = "group-spread"\nparams = { data = "island.gpkg", layer = "homes", group_by = "zoen" }',
+        r"step 'last': group_by: .*island\.gpkg', layer 'homes', has no field 'zoen'; did you mean 'zone'\?",
+    ),
+    "unknown weight field": (
+        'script = "point-remoteness"\nparams = { data = "island.gpkg", layer = "homes", weight = "popp" }',
+        r"step 'last': weight: .* has no field 'popp'; did you mean 'pop'\?",
+    ),
+    "unknown field of the second layer": (
+        'script = "cross-spread"\nparams = { data = { from = "first" }, group_by = "zone", to = "island.gpkg", '
+        'to_layer = "sites", to_group_by = "site_nme" }',
+        r"step 'last': to_group_by: .*layer 'sites', has no field 'site_nme'; did you mean 'site_name'\?",
+    ),
 }
 
 

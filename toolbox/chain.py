@@ -382,6 +382,7 @@ def _check_steps(ordered: list[Step], steps: dict[str, Step], place: _Place) -> 
                 raise place.error(
                     step.name, f"{p.name}: input {value!r} does not exist; check the path.", kind=InputError
                 )
+        _check_names(step, checked, {path for path, _ in targets}, place)
         output = step.output
         if output is None:
             continue
@@ -415,6 +416,55 @@ def _check_steps(ordered: list[Step], steps: dict[str, Step], place: _Place) -> 
             )
         except PairspreadError as exc:
             raise place.error(step.name, str(exc), kind=type(exc)) from exc
+
+
+def _read_blocks(script: Script) -> list[tuple[Param, Param | None, list[Param]]]:
+    """Each dataset a script reads, with its layer parameter and the parameters naming its fields.
+
+    The manifest declares them in that order: a dataset, then the layer and the fields that
+    belong to it, up to the next dataset (the runner pairs datasets and layers the same way).
+    """
+    blocks: list[tuple[Param, Param | None, list[Param]]] = []
+    for p in script.params:
+        if _is_input(p):
+            blocks.append((p, None, []))
+        elif blocks and p.kind == "layer-in-dataset" and blocks[-1][1] is None:
+            blocks[-1] = (blocks[-1][0], p, blocks[-1][2])
+        elif blocks and p.kind in ("column", "columns"):
+            blocks[-1][2].append(p)
+    return blocks
+
+
+def _check_names(step: Step, checked: dict[str, Any], written: set[str], place: _Place) -> None:
+    """A step's layer and field names, checked against the input files themselves.
+
+    Only files the chain does not write itself (one there now may be an older run's); results
+    of steps, standard input and inputs read with fiona are checked when the step runs.
+    """
+    from .layers import stream
+
+    if checked.get("engine") == "fiona":
+        return
+    for data, layer, fields in _read_blocks(step.script):
+        path = step.params.get(data.name)
+        if not isinstance(path, str) or path == "-" or "://" in path or os.path.abspath(path) in written:
+            continue
+        wanted = checked.get(layer.name) if layer is not None else None
+        try:
+            available = stream.layer_parts(path, layer=wanted).fields
+        except PairspreadError as exc:
+            name = layer.name if layer is not None and wanted is not None else data.name
+            raise place.error(step.name, f"{name}: {exc}", kind=type(exc)) from exc
+        for p in fields:
+            value = checked.get(p.name)
+            for name in [value] if isinstance(value, str) else list(value or ()):
+                if name not in available:
+                    shown = f"{path!r}" + (f", layer {wanted!r}," if wanted else "")
+                    raise place.error(
+                        step.name,
+                        f"{p.name}: {shown} has no field {name!r}; {_suggest(name, available)}",
+                        kind=InputError,
+                    )
 
 
 def _exists(path: str) -> bool:

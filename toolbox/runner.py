@@ -94,7 +94,7 @@ def _check_notes(script: Script, result: Any, strict: bool) -> dict[str, str]:
         else "the notes saying why in the output's provenance record (attrs['notes'] in Python)"
     )
     head = f"{script.name}: {len(names)} group(s) could not be computed: {shown}"
-    reason = f"{names[0]!r}: {notes[names[0]]}"
+    reason = f"{names[0]!r}: {notes[names[0]].rstrip('.')}."
     if strict:
         raise PartialResultError(f"{head}, so nothing was written ({spell('strict', True)}). {reason}")
     how = "stop with exit status 3" if current_caller() == "cli" else "raise PartialResultError"
