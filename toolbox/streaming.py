@@ -344,7 +344,8 @@ def prepare(
             decoded = _decode(batch, group_by, weight, setup)
             running = registry.add(decoded.keys.keys)[decoded.local_codes]
             if store is not None:  # in group order: later passes then touch one group's bins at a time
-                order = np.argsort(running.astype(np.int32), kind="stable")
+                small = np.uint16 if registry.count <= np.iinfo(np.uint16).max else np.int32
+                order = np.argsort(running.astype(small), kind="stable")  # 16 bits: a radix sort
                 w = None if decoded.w is None else decoded.w[order]
                 store.write(decoded.x[order], decoded.y[order], w, running[order])
             mine = Survey.of(_points(decoded, running, registry.count, setup))

@@ -222,9 +222,8 @@ class Plan:
 
     def empty(self) -> State:
         """A state with nothing added (the neutral element of :meth:`State.merge`)."""
-        cells = np.zeros((4, self.size))
-        bounds = np.vstack([np.full(self.size, np.inf), np.full(self.size, -np.inf)])
-        return State(self.key, cells, bounds, np.zeros(self.n_groups), _Gathered.empty(), 0)
+        cells = np.zeros((4, self.size))  # pages are only touched when a point lands in them
+        return State(self.key, cells, _no_bounds(self.size), np.zeros(self.n_groups), _Gathered.empty(), 0)
 
     def accumulate(self, points: Points, into: State | None = None) -> State:
         """The state of one batch of points (its groups coded as in the survey).
@@ -289,6 +288,14 @@ class Plan:
             fx, fy = proj(x[idx], y[idx])
             px[idx], py[idx] = fx, fy
         return px, py
+
+
+def _no_bounds(size: int) -> np.ndarray:
+    """Smallest and largest values of empty cells: +inf and -inf (filled in place, no copies)."""
+    bounds = np.empty((2, size))
+    bounds[0].fill(np.inf)
+    bounds[1].fill(-np.inf)
+    return bounds
 
 
 @functools.cache
@@ -774,10 +781,7 @@ class RefinementState:
 
     @classmethod
     def empty(cls, refinement: Refinement) -> RefinementState:
-        size = refinement.size
-        return cls(
-            refinement, np.zeros((4, size)), np.vstack([np.full(size, np.inf), np.full(size, -np.inf)])
-        )
+        return cls(refinement, np.zeros((4, refinement.size)), _no_bounds(refinement.size))
 
     def merge(self, other: RefinementState) -> RefinementState:
         bounds = np.vstack(
