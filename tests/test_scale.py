@@ -381,6 +381,12 @@ def test_group_spread_on_a_cluster_matches_one_process(local_cluster, tmp_path, 
     assert (crossed["total_lo"][live] <= here["total_hi"][live]).all()
     assert (here["total_lo"][live] <= crossed["total_hi"][live]).all()
     assert (crossed["rel_bound"][live] <= 0.01).all()
+    # a file with null geometries: one clear error from the worker that read it
+    holed = homes.iloc[:10].copy()
+    holed.loc[holed.index[3], "geometry"] = None
+    holed.to_parquet(tmp_path / "homes" / "part-1.parquet")
+    with pytest.raises(GeometryError, match=r"part-1\.parquet.* have no geometry"):
+        toolbox.group_spread(tmp_path / "homes", dask_scheduler=address, **common)
     # without a scheduler (and no default client) a Dask frame is read here, partition by partition
     alone = toolbox.group_spread(frame, **common)
     assert alone["n_points"].tolist() == whole["n_points"].tolist()
@@ -460,13 +466,38 @@ def test_bad_input_on_streams_is_one_line_and_writes_nothing(tmp_path, homes, mo
     assert (
         code != 0 and "part-1.parquet" in err and "no geometry" in err and len(err.strip().splitlines()) == 1
     )
-    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1)
+    holed.to_parquet(folder / "part-1.parquet")
+    code, err = _run_cli("cross-spread", folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+    assert code != 0 and "part-1.parquet" in err and "no geometry" in err and len(err.strip().splitlines()) == 1
+    homes.iloc[:10].to_parquet(folder / "part-1.parquet")
+    # a part whose fields disagree with the others' (a type changed, a field missing)
+    renamed = homes.iloc[:10].assign(zone=np.arange(10))
+    renamed.to_parquet(folder / "part-7.parquet")
+    for script in ("group-spread", "cross-spread"):
+        code, err = _run_cli(script, folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+        assert code != 0 and "do not agree" in err and "field 'zone'" in err, err
+        assert len(err.strip().splitlines()) == 1
+    homes.iloc[:10].drop(columns=["pop"]).to_parquet(folder / "part-7.parquet")
+    code, err = _run_cli("group-spread", folder, "--group-by", "zone", "--batch-rows", "50", "--output", out)
+    assert code != 0 and "do not agree" in err and "field 'pop'" in err and len(err.strip().splitlines()) == 1
+    (folder / "part-7.parquet").unlink()
+    # two layers streamed, only one of which has a CRS
+    bare = tmp_path / "bare.parquet"
+    homes.iloc[:10].set_crs(None, allow_override=True).to_parquet(bare)
     code, err = _run_cli(
-        "group-spread", folder, "--group-by", "zone", "--dask-scheduler", "tcp://127.0.0.1:9", "--output", out
+        "cross-spread", folder, "--group-by", "zone", "--to", bare, "--batch-rows", "50", "--output", out
     )
-    assert code != 0 and "No Dask scheduler answered" in err and len(err.strip().splitlines()) == 1
-    code, err = _run_cli("point-remoteness", folder, "--batch-rows", "50", "--output", tmp_path / "r.gpkg")
-    assert code != 0 and "reads its layer whole" in err
+    assert code != 0 and "Only one of" in err and len(err.strip().splitlines()) == 1
+    monkeypatch.setattr(cluster, "CONNECT_TIMEOUT", 1)
+    for script in ("group-spread", "cross-spread"):
+        code, err = _run_cli(
+            script, folder, "--group-by", "zone", "--dask-scheduler", "tcp://127.0.0.1:9", "--output", out
+        )
+        assert code != 0 and "No Dask scheduler answered" in err and len(err.strip().splitlines()) == 1
+    code, err = _run_cli(
+        "point-remoteness", folder, "--dask-scheduler", "tcp://127.0.0.1:9", "--output", tmp_path / "r.gpkg"
+    )
+    assert code != 0 and "one row per feature" in err and len(err.strip().splitlines()) == 1
     assert not out.exists() and not (tmp_path / "r.gpkg").exists()
 
 

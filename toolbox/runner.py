@@ -174,6 +174,8 @@ def _run_script(
                 line.phase("writing")
             record = layers.provenance(script.name, values, made_in=made_in, notes=notes)
             written = layers.write_output(result, output, record=record, sidecar=sidecar, **where)
+        elif isinstance(result, layers.FrameBatches):  # no file to stream into: the whole result
+            result = result.frame()
     finally:
         line.close()
     return result, written

@@ -42,7 +42,7 @@ from .estimate.state import Survey
 from .layers import PointLayer
 from .layers.stream import LayerParts, prefetched
 
-__all__ = ["Prepared", "prepare", "pair_sums", "cross_sums", "SPILL_BYTES_PER_POINT"]
+__all__ = ["Prepared", "prepare", "binned", "pair_sums", "pair_sums_of_binned", "cross_sums", "coded_points", "SPILL_BYTES_PER_POINT"]
 
 #: bytes a point takes in the spill: x, y and weight as float64, its batch-local group code
 SPILL_BYTES_PER_POINT = 28
@@ -386,18 +386,38 @@ def pair_sums(ready: Prepared, *, tolerance: float, method: str) -> estimate.Gro
     On a cluster, ``auto`` bins small groups too (gathering their points for exact sums would
     bring coordinates to one place); the guarantee is the same.
     """
+    return pair_sums_of_binned(*binned(ready, tolerance=tolerance, method=method))
+
+
+def pair_sums_of_binned(plan, state, refined: list) -> estimate.GroupPairSums:
+    """Every group's pair total from the results of :func:`binned`."""
+    if not refined:
+        return state.finish(plan)
+    resolved = _Resolved()
+    for part in refined:
+        for group, cells in part.by_cell().items():
+            resolved.cells.setdefault(group, {}).update(cells)
+    return state.finish(plan, resolved)
+
+
+def binned(ready: Prepared, *, tolerance: float, method: str):
+    """The plan, the merged state and the refinement states (one per refinement pass, none
+    when no bin is too heavy) of the prepared layer."""
     if ready.client is not None and method == "auto" and tolerance > 0:
         method = "projection"
     plan = ready.survey.plan(tolerance=tolerance, method=method, names=ready.names())
     state = ready.reduce(plan.accumulate)
     refinement = state.refinement(plan)
     if refinement is None:
-        return state.finish(plan)
-    resolved = _Resolved()
-    for part in _split(refinement, REFINE_CELLS_PER_PASS):
-        for group, cells in ready.reduce(functools.partial(part.accumulate, plan)).by_cell().items():
-            resolved.cells.setdefault(group, {}).update(cells)
-    return state.finish(plan, resolved)
+        return plan, state, []
+    parts = _split(refinement, REFINE_CELLS_PER_PASS)
+    return plan, state, [ready.reduce(functools.partial(part.accumulate, plan)) for part in parts]
+
+
+def coded_points(ready: Prepared, batch: PointLayer) -> estimate.Points:
+    """A batch read again (any fields) as estimator points, its groups coded as ``ready.keys``."""
+    decoded = _decode(batch, ready.group_by, ready.weight, ready.setup)
+    return _points(decoded, _mapping(ready.keys, decoded.keys, batch.label)[decoded.local_codes], ready.keys.count, ready.setup)
 
 
 #: most sub-bins refined in one pass: their state (six float64 each) stays under ~400 MB, and a

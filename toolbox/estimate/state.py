@@ -898,12 +898,13 @@ def _point_parts(W, S, lo, hi, index, p):
     return exact + low, np.maximum(high - low, 0.0)
 
 
-def point_sums_of(state: State, plan: Plan, points: Points, refined: RefinementState | None = None):
+def point_sums_of(state: State, plan: Plan, points: Points, refined=None):
     """Σ_j w_j d_ij from every point of ``points`` to all the points of its group.
 
     A further pass after :meth:`State.finish`: each point is placed in the finished bins of
-    every direction (and in the sub-bins of a refined cell); points in other bins are summed
-    exactly, those of its own bin bounded. Gathered groups are summed exactly against their
+    every direction (and in the sub-bins of a refined cell: ``refined`` is a RefinementState,
+    or a list of them when the refinement came in several passes); points in other bins are
+    summed exactly, those of its own bin bounded. Gathered groups are summed exactly against their
     gathered points. Returns a :class:`PointSums` for these points, in their order.
     """
     from .results import PointSums
@@ -922,7 +923,8 @@ def point_sums_of(state: State, plan: Plan, points: Points, refined: RefinementS
     gathered = np.isin(g, np.flatnonzero(plan.route == ROUTE_GATHER))
     if gathered.any():
         _gathered_point_sums(state, plan, points, np.flatnonzero(gathered), out)
-    subcells = refined.refinement if refined is not None else None
+    # the refinement may have come in several passes, each a RefinementState of its own cells
+    refined_parts = [] if refined is None else [refined] if isinstance(refined, RefinementState) else list(refined)
     for group in np.unique(g[np.isin(g, np.flatnonzero(plan.route == ROUTE_BINS))]):
         mine = np.flatnonzero(g == group)
         px, py = plan.frame_coordinates(points.x[mine], points.y[mine], g[mine])
@@ -933,14 +935,15 @@ def point_sums_of(state: State, plan: Plan, points: Points, refined: RefinementS
         value, uncertain = np.zeros(mine.size), np.zeros(mine.size)
         for d in range(m):
             e, u = _point_parts(W[d], S[d], lo[d], hi[d], local[d], p[d])
-            if subcells is not None:
+            for part in refined_parts:
+                subcells = part.refinement
                 for c in np.flatnonzero((subcells.group == group) & (subcells.direction == d)):
                     inside = local[d] == subcells.bin[c]
                     if not inside.any():
                         continue
                     sl = slice(subcells.offset[c], subcells.offset[c] + subcells.sub_bins[c])
-                    sw, ss = refined.cells[0, sl], refined.cells[1, sl]
-                    slo, shi = refined.bounds[0, sl], refined.bounds[1, sl]
+                    sw, ss = part.cells[0, sl], part.cells[1, sl]
+                    slo, shi = part.bounds[0, sl], part.bounds[1, sl]
                     width = subcells.hi[c] - subcells.lo[c]
                     scale = subcells.sub_bins[c] / width if width > 0 else 0.0
                     q = p[d, inside]

@@ -9,6 +9,7 @@ held as Arrow tables; ``where`` turns a SQL ``WHERE`` text into an Arrow filter 
 touching layers that were already there.
 """
 
+from .batched import FrameBatches
 from .read import ENGINES, PointLayer, points_of, read_layer, read_points
 from .write import (
     LAYER_FORMATS,
@@ -32,6 +33,7 @@ __all__ = [
     "output_format",
     "shapefile_names",
     "write_output",
+    "FrameBatches",
     "ArrowLayer",
     "arrow_layer",
     "is_parquet",

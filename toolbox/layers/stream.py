@@ -42,7 +42,7 @@ from .read import (
     points_of,
 )
 
-__all__ = ["LayerParts", "layer_parts", "is_dask_frame", "DEFAULT_BATCH_ROWS"]
+__all__ = ["LayerParts", "layer_parts", "feature_batches", "is_dask_frame", "DEFAULT_BATCH_ROWS"]
 
 #: features per batch when none is asked for: about 40 MB of coordinates, codes and weights
 DEFAULT_BATCH_ROWS = 1 << 20
@@ -337,3 +337,80 @@ def _read_dask_partition(part, fields: list[str], batch_rows: int) -> Iterator[P
         frame = frame.set_crs(frame.crs, allow_override=True)
     for start in range(0, len(frame), batch_rows):
         yield points_of(frame.iloc[start : start + batch_rows], fields, label)
+
+
+# --------------------------------------------------------------------------------------------
+# whole features (every field and the geometry), batch by batch, for per-feature outputs
+
+
+def _frames_ogr(part, batch_rows: int):
+    import geopandas
+    import shapely
+
+    path, name, where, label = part
+    try:
+        with pyogrio.raw.open_arrow(path, layer=name, where=where, batch_size=batch_rows, use_pyarrow=True) as (
+            meta,
+            reader,
+        ):
+            geom = meta["geometry_name"] or "wkb_geometry"
+            for batch in reader:
+                if batch.num_rows == 0:
+                    continue
+                attributes = batch.drop_columns([geom]).to_pandas()
+                geometry = shapely.from_wkb(batch.column(geom).to_numpy(zero_copy_only=False))
+                yield geopandas.GeoDataFrame(attributes, geometry=geometry, crs=meta["crs"])
+    except (pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError) as exc:
+        raise _reading_failed(exc, label, where, "pyogrio") from exc
+
+
+def _frames_frame(part, batch_rows: int):
+    frame, _ = part
+    for start in range(0, len(frame), batch_rows):
+        yield frame.iloc[start : start + batch_rows]
+
+
+def _frames_arrow(part, batch_rows: int):
+    import pyarrow as pa
+
+    from . import parquet
+
+    layer, where = part
+    for batch in layer.batches(None, where, batch_rows):
+        yield parquet.frame_of_table(pa.Table.from_batches([batch]), layer)
+
+
+def _frames_parquet(part, batch_rows: int):
+    import pyarrow as pa
+    import pyarrow.dataset as pads
+
+    from . import parquet
+
+    path, base, where, geometry, label = part
+    partitioning = pads.HivePartitioning.discover(infer_dictionary=False) if base else None
+    dataset = pads.dataset([path], format="parquet", partitioning=partitioning, partition_base_dir=base)
+    layer = parquet.ArrowLayer(dataset, geometry, f"{label} (file {path!r})")
+    for batch in layer.batches(None, where, batch_rows):
+        yield parquet.frame_of_table(pa.Table.from_batches([batch]), layer)
+
+
+def _frames_dask(part, batch_rows: int):
+    frame, label = part
+    yield from _frames_frame((frame.compute() if hasattr(frame, "compute") else frame, label), batch_rows)
+
+
+_FRAMES = {
+    _read_ogr: _frames_ogr,
+    _read_frame: _frames_frame,
+    _read_arrow_layer: _frames_arrow,
+    _read_parquet_file: _frames_parquet,
+    _read_dask_partition: _frames_dask,
+}
+
+
+def feature_batches(parts: LayerParts, batch_rows: int) -> Iterator:
+    """Every feature of the layer with all its fields and geometry, as GeoDataFrames of at most
+    ``batch_rows`` rows, in the order :meth:`LayerParts.batches` gives their points."""
+    batch_rows = check_batch_rows(batch_rows)
+    for part in parts.parts:
+        yield from _FRAMES[parts.reader](part, batch_rows)

@@ -22,8 +22,9 @@ from pathlib import Path
 import pandas as pd
 import pyogrio
 
-from ..errors import OutputError, ParameterError, param_noun, spell
+from ..errors import OutputError, PairspreadError, ParameterError, param_noun, spell
 from ..tables import csv_text
+from .batched import FrameBatches, write_batches
 from .read import _first_line, _is_frame
 
 __all__ = [
@@ -598,7 +599,8 @@ def write_output(
     are written under a temporary name (a Shapefile's parts in a temporary folder) and renamed.
     A failure leaves no partial output and the previous file as it was.
     """
-    geometry_name = frame.geometry.name if _is_frame(frame) else None
+    batched = isinstance(frame, FrameBatches)  # a per-feature result made as it is written
+    geometry_name = frame.geometry_name if batched else frame.geometry.name if _is_frame(frame) else None
     fields = [c for c in frame.columns if c != geometry_name]
     sidecar = sidecar and record is not None
     check_output(
@@ -609,7 +611,7 @@ def write_output(
     if kind == "stdout":
         from .pipe import write_stdout
 
-        write_stdout(frame, stdout_format(what, stdout_as), layer_name)
+        write_stdout(frame.frame() if batched else frame, stdout_format(what, stdout_as), layer_name)
         return "standard output"
     target = Path(path)
     with writer_lock(target):
@@ -631,6 +633,32 @@ def write_output(
     return str(path)
 
 
+def _shapefile_renames(fields) -> dict:
+    """Fields whose names a Shapefile shortens, and their new names (said in a warning)."""
+    renamed = {k: v for k, v in shapefile_names(fields).items() if k != v}
+    if renamed:
+        warnings.warn(
+            "Shapefile field names are at most 10 characters: "
+            + ", ".join(f"{k} → {v}" for k, v in renamed.items()),
+            UserWarning,
+            stacklevel=3,
+        )
+    return renamed
+
+
+def _write_batched(frame: FrameBatches, tmp, kind, renamed, layer_name, record, text) -> int:
+    """A batched result written into ``tmp`` with the same provenance a frame gets."""
+    options = {}
+    if record is not None and kind == "gpkg":
+        options = dict(layer_options={"DESCRIPTION": _one_line(record)}, layer_metadata={PROVENANCE_KEY: text})
+    elif record is not None and kind == "geojson":
+        options = dict(layer_options={"DESCRIPTION": text})
+    return write_batches(
+        frame, tmp, kind, layer_name=layer_name, options=options, renamed=renamed, record_text=text,
+        provenance_key=PROVENANCE_KEY,
+    )  # fmt: skip
+
+
 def _write_once(
     frame, path: str, target: Path, kind: str, fields, layer_name: str, record: dict | None, sidecar: bool
 ) -> bool:
@@ -641,12 +669,21 @@ def _write_once(
         tmp = scratch / target.name
         before = _signature(target)
         text = None if record is None else json.dumps(record)
-        if kind == "gpkg":
-            # a file holding nothing but the table being replaced is written afresh: dropping
-            # millions of old rows from a copy costs more than writing the new ones
-            if before is not None and not _holds_only(target, layer_name):
-                shutil.copyfile(target, tmp)
-                shutil.copymode(target, tmp)
+        rows = None if isinstance(frame, FrameBatches) else len(frame)
+        # a file holding nothing but the table being replaced is written afresh: dropping
+        # millions of old rows from a copy costs more than writing the new ones
+        if kind == "gpkg" and before is not None and not _holds_only(target, layer_name):
+            shutil.copyfile(target, tmp)
+            shutil.copymode(target, tmp)
+        if rows is None:  # batch after batch into the same temporary file
+            renamed = _shapefile_renames(fields) if kind == "shp" else {}
+            if renamed and record is not None:  # the sidecar keeps the mapping
+                record = {**record, "shapefile_fields": renamed}
+            with _unsynced_sqlite() if kind == "gpkg" else contextlib.nullcontext():
+                rows = _write_batched(frame, tmp, kind, renamed, layer_name, record, text)
+            if kind == "gpkg":
+                _flush_to_disk(tmp)
+        elif kind == "gpkg":
             extra = {}
             if record is not None:
                 extra = dict(
@@ -666,19 +703,12 @@ def _write_once(
             extra = {} if record is None else dict(layer_options={"DESCRIPTION": text})
             pyogrio.write_dataframe(frame, tmp, driver="GeoJSON", **extra)
         else:  # names are shortened here, at a character boundary, rather than by GDAL
-            renamed = {k: v for k, v in shapefile_names(fields).items() if k != v}
-            if renamed:
-                warnings.warn(
-                    "Shapefile field names are at most 10 characters: "
-                    + ", ".join(f"{k} → {v}" for k, v in renamed.items()),
-                    UserWarning,
-                    stacklevel=2,
-                )
+            renamed = _shapefile_renames(fields)
             if renamed and record is not None:  # the sidecar keeps the mapping
                 record = {**record, "shapefile_fields": renamed}
             out = frame.rename(columns=renamed)
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
-        _check_written(tmp, kind, len(frame), [str(f) for f in fields], layer_name, path)
+        _check_written(tmp, kind, rows, [str(f) for f in fields], layer_name, path)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]
         if record is not None and sidecar and kind in ("csv", "shp"):
             note = tmp.with_name(tmp.name + SIDECAR_SUFFIX)
@@ -690,8 +720,8 @@ def _write_once(
             _move_into_place(produced, target.parent, scratch)
             COMMITTED.append(str(path))
     except BaseException as exc:
-        if isinstance(exc, (OutputError, KeyboardInterrupt, SystemExit)):
-            raise
+        if isinstance(exc, (PairspreadError, KeyboardInterrupt, SystemExit)):
+            raise  # ours (an input error met in a batch, too) says what went wrong already
         reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else _first_line(exc)
         raise OutputError(
             f"Writing {path!r} failed: {reason}; nothing was written."

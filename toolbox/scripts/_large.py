@@ -12,11 +12,13 @@ import os
 import warnings
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
 
-from .. import cluster, estimate, streaming
-from ..errors import InputError, ParameterError
+from .. import cluster, estimate, layers, streaming, tables
+from ..errors import GeometryError, InputError, ParameterError
 from ..layers import stream
+from ..layers.batched import FrameBatches
 
 #: input files with more features than this are streamed even when no batch size is given
 #: (about 2 GB of points, codes, weights and their sorted copies in memory)
@@ -42,30 +44,60 @@ def large_parts(data, *, layer, where, engine, batch_rows, dask_scheduler):
     return parts if parts.rows is not None and parts.rows > STREAM_ABOVE else None
 
 
-def refuse_per_feature(data, *, layer, where, engine, batch_rows, dask_scheduler) -> None:
-    """Refuse, saying why and what to do, an input a per-feature script cannot read whole.
+def refuse_per_feature_on_cluster(*, dask_scheduler) -> None:
+    """Refuse a cluster for a per-feature script, saying why and what to do.
 
-    A per-feature result is as large as its input (one row per feature, every field kept),
-    and the per-point sums need every group's points at hand, so such a script reads its
-    layer whole; batches and clusters serve the per-group scripts.
+    Its result has one row per feature, every field kept: as large as its input, and written
+    from this machine, so every feature would travel from the workers to here. It streams
+    batches here instead (``--batch-rows``), writing its output batch by batch.
     """
-    asked = "--batch-rows" if batch_rows is not None else "--dask-scheduler" if dask_scheduler else None
-    if asked is None and stream.is_dask_frame(data):
-        asked = "a Dask GeoDataFrame"
-    rows = None
-    if asked is None and engine != "fiona" and isinstance(data, (str, os.PathLike)):
-        rows = stream.layer_parts(data, layer=layer, where=where, engine=engine).rows
-        if rows is None or rows <= STREAM_ABOVE:
-            return
-    if asked is None and rows is None:
-        return
-    what = f"it was given {asked}" if asked else f"its input holds {rows:,} features"
+    if dask_scheduler is None:
+        return  # a Dask frame without a scheduler is read here, partition after partition
     raise ParameterError(
-        f"point-remoteness writes one row per feature and needs each group's points together, so "
-        f"it reads its layer whole, and {what}. Run it on parts of the layer that fit in memory "
-        "(each a set of whole groups, chosen with --where), or use group-spread, which reads in "
-        "batches, for per-group totals and means."
+        "point-remoteness writes one row per feature from this machine, so on a cluster every "
+        "feature would travel here, and it was given --dask-scheduler. Give it the layer's files "
+        "with --batch-rows instead: it reads them in batches and writes its output batch by batch."
     )
+
+
+def per_feature(
+    parts, *, group_by, weight, tolerance, method, distance, crs, batch_rows, new_fields, add_fields
+) -> FrameBatches:  # fmt: skip
+    """Per-feature results of a layer in parts, made batch by batch as they are written.
+
+    The passes of group-spread (survey, bins, heavy bins) run first; then each batch of whole
+    features is read again, its points placed in the finished bins
+    (:func:`toolbox.estimate.state.point_sums_of`) and ``add_fields(frame, feature, sums,
+    group_mean, group_n)`` gives its rows. Memory holds one batch and the state, never the
+    layer or its result.
+    """
+    setup = estimate.distance_setup(parts.crs, parts.label, distance=distance, target=crs, script="point-remoteness")
+    rows = stream.DEFAULT_BATCH_ROWS if batch_rows is None else batch_rows
+    with streaming.prepare(parts, group_by=group_by, weight=weight, setup=setup, batch_rows=rows) as ready:
+        plan, state, refined = streaming.binned(ready, tolerance=tolerance, method=method)
+    groups = streaming.pair_sums_of_binned(plan, state, refined)  # the groups' means, for remote_idx
+    # groups that cannot be computed (notes) are known now, before anything is written
+    affected = tables.noted_groups(tables.group_labels(ready.keys.keys), groups.note)
+    fields = [*group_by, *([weight] if weight else [])]
+
+    def make():
+        for frame in stream.feature_batches(parts, rows):
+            batch = layers.points_of(frame, fields, parts.label)
+            if batch.feature.size != len(frame):
+                raise GeometryError(
+                    f"MultiPoint feature(s) of {parts.label} have several points, so they have no "
+                    "single distance to the rest; split them into single points first."
+                )
+            points = streaming.coded_points(ready, batch)
+            sums = state.point_sums_of(plan, points, refined)
+            codes = points.groups
+            out = add_fields(frame, batch.feature, sums, groups.mean[codes], groups.n_points[codes])
+            notes = np.full(len(frame), "", dtype=object)
+            notes[batch.feature] = sums.note
+            yield tables.add_notes(out, notes, affected)
+
+    columns = [*parts.fields, *new_fields, "geometry"]
+    return FrameBatches(make, columns, "geometry", parts.crs, attrs={tables.NOTES: affected})
 
 
 def _default_client():

@@ -20,17 +20,19 @@ def point_remoteness(
 ):  # fmt: skip
     """A copy of the layer with every feature's mean distance to the others of its group."""
     places = Places.of(locals())
-    if not places.read_whole(data, batch_rows, dask_scheduler):
-        _large.refuse_per_feature(
-            data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler
+    if not places.read_whole(data, batch_rows, dask_scheduler):  # points as stored: may be streamed
+        _large.refuse_per_feature_on_cluster(dask_scheduler=dask_scheduler)
+        parts = _large.large_parts(
+            data, layer=layer, where=where, engine=engine, batch_rows=batch_rows, dask_scheduler=None
         )
+        if parts is not None:  # read, and written, batch by batch
+            _check_free(parts.fields, parts.label)
+            return _large.per_feature(
+                parts, group_by=group_by, weight=weight, tolerance=tolerance, method=method, distance=distance,
+                crs=crs, batch_rows=batch_rows, new_fields=NEW_FIELDS, add_fields=_with_fields,
+            )  # fmt: skip
     frame, label = layers.read_layer(data, layer=layer, where=where, engine=engine)
-    taken = [f for f in (*NEW_FIELDS, *([region_id] if regions is not None else ())) if f in frame.columns]
-    if taken:
-        raise InputError(
-            f"{label} already has field(s) {', '.join(taken)}; rename them first so that nothing "
-            "is overwritten."
-        )
+    _check_free(frame.columns, label, *([region_id] if regions is not None else ()))
     fields = [*group_by, *([weight] if weight else [])]
     read, setup = frame_points(frame, label, fields, places=places, distance=distance, crs=crs, script="point-remoteness")
     parts = np.bincount(read.feature, minlength=len(frame))
@@ -66,20 +68,9 @@ def point_remoteness(
         both = np.bincount(codes, np.nan_to_num(w * sums.total), n_groups) / 2
         pair_weight = np.bincount(codes, w * sums.other_weight, n_groups) / 2
         group_mean = np.where(pair_weight > 0, both / pair_weight, np.nan)
-        index = sums.mean / group_mean[codes]
-    out = frame.copy()
-    for name, values in (
-        ("remote_avg", sums.mean),
-        ("remote_lo", sums.lower / sums.other_weight),
-        ("remote_hi", sums.upper / sums.other_weight),
-        ("remote_idx", index),
-    ):
-        column = np.full(len(frame), np.nan)
-        column[rows] = values
-        out[name] = column
     group_n = np.zeros(len(frame), dtype=np.int64)
     group_n[rows] = np.bincount(codes, minlength=n_groups)[codes]
-    out["group_n"] = group_n
+    out = _with_fields(frame, rows, sums, group_mean[codes], group_n)
     if join is not None:  # which region each feature was compared within (empty: none, or left out)
         region = np.full(len(frame), None, dtype=object)
         region[source] = read.attributes[region_id].astype(object).where(read.attributes[region_id].notna(), None)
@@ -88,3 +79,30 @@ def point_remoteness(
     notes[rows] = sums.note
     labels = tables.group_labels(grouped.groups.keys)
     return tables.add_notes(out, notes, tables.noted_groups(labels, sums.note, codes))
+
+
+def _check_free(fields, label, *more) -> None:
+    taken = [f for f in (*NEW_FIELDS, *more) if f in fields]
+    if taken:
+        raise InputError(
+            f"{label} already has field(s) {', '.join(taken)}; rename them first so that nothing "
+            "is overwritten."
+        )
+
+
+def _with_fields(frame, feature, sums, group_mean, group_n):
+    """A copy of ``frame`` with the new fields, from ``sums`` (entry i for the row
+    ``feature[i]``), each entry's group mean distance and each row's group size."""
+    out = frame.copy()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for name, values in (
+            ("remote_avg", sums.mean),
+            ("remote_lo", sums.lower / sums.other_weight),
+            ("remote_hi", sums.upper / sums.other_weight),
+            ("remote_idx", sums.mean / group_mean),
+        ):
+            column = np.full(len(frame), np.nan)
+            column[feature] = values
+            out[name] = column
+    out["group_n"] = group_n
+    return out
