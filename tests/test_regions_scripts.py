@@ -352,3 +352,48 @@ def test_polygons_without_as_points_name_the_option(layers_on_disk, refused):
 def test_python_messages_name_keywords():
     with pytest.raises(toolbox.errors.ParameterError, match="'fill_spacing' applies to as_points='fill'"):
         toolbox.group_spread(one_feature(shapely.box(0, 0, 1, 1)), fill_spacing=0.1)
+
+
+def test_spread_contrast_of_polygons_by_their_centroids_against_dcor():
+    import dcor
+
+    rng = np.random.default_rng(1)
+    centres = shapely.points(X0 + rng.uniform(0, 1000, 60), Y0 + rng.uniform(0, 1000, 60))
+    kind = rng.choice(["a", "b"], 60)
+    plots = gpd.GeoDataFrame({"kind": kind}, geometry=shapely.buffer(centres, 5.0), crs=CRS)
+    table = toolbox.spread_contrast(plots, compare="kind", as_points="centroid", tolerance=0, seed=3)
+    xy = shapely.get_coordinates(shapely.centroid(plots.geometry.values))
+    # dcor.energy_distance: 2E|X−Y| − E|X−X'| − E|Y−Y'| (V-statistic; Székely & Rizzo 2004)
+    expected = dcor.energy_distance(xy[kind == "a"], xy[kind == "b"])
+    assert table["energy"][0] == pytest.approx(expected, rel=1e-9)
+    with pytest.raises(toolbox.errors.ParameterError, match="as_points='inside'"):
+        toolbox.spread_contrast(plots, compare="kind", as_points="fill")
+
+
+def test_region_ids_missing_duplicated_or_clashing():
+    points, regions = make_points(), make_regions()
+    blank = regions.assign(dname=["West", None, "Empty"])
+    with pytest.raises(toolbox.errors.InputError, match="1 region.*have no 'dname' value"):
+        toolbox.group_spread(points, regions=blank, region_id="dname")
+    twice = regions.assign(dname=["Both", "Both", "Empty"])
+    with pytest.warns(UserWarning, match="share the 'dname' value"):
+        table = toolbox.group_spread(points, regions=twice, region_id="dname", outside_regions="drop", tolerance=0)
+    assert table["dname"].tolist() == ["Both"]  # one group for the shared value
+    with pytest.raises(toolbox.errors.InputError, match="already has a field 'tenure'"):
+        toolbox.group_spread(points, regions=regions.assign(tenure=1), region_id="tenure", group_by="tenure")
+    with pytest.warns(UserWarning), pytest.raises(toolbox.errors.InputError, match="already has field.*mean_dist"):
+        toolbox.group_spread(
+            points, regions=regions.assign(mean_dist=1.0), region_id="code", output_on="regions"
+        )
+
+
+def test_point_remoteness_refuses_a_spread_feature_in_two_regions():
+    regions = make_regions()
+    across = gpd.GeoDataFrame(  # a strip over the edge x = 1500 between West and East
+        geometry=[shapely.box(X0 + 1400, Y0 + 100, X0 + 1600, Y0 + 200), shapely.box(X0 + 100, Y0 + 100, X0 + 200, Y0 + 200)],
+        crs=CRS,
+    )
+    with pytest.raises(toolbox.errors.GeometryError, match="several regions.*as_points='inside'"):
+        toolbox.point_remoteness(across, regions=regions, region_id="code", as_points="fill", fill_spacing=20.0)
+    out = toolbox.point_remoteness(across, regions=regions, region_id="code", as_points="inside")
+    assert out["code"].tolist() == [11, 11] or out["code"].tolist() == [12, 11]

@@ -7,25 +7,26 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from .. import estimate, grouping, layers, tables
-from ..errors import InputError, ParameterError
+from .. import estimate, grouping, tables
+from ..errors import InputError, ParameterError, spell
 from ..kernels.energy import check_permutations, holm_adjust
+from ._common import Places, read_measured
 
 _SAMPLE = "__sample__"
 
 
-def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine):
+def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine, places):
     """Read → the estimator's distance set-up → test groups → weights (features as frequencies).
 
     Returns the points (in the set-up's frame: planar, or longitude and latitude), the feature
     of every point, its weight, the sample value of every feature and the test groups.
     """
     fields = [*group_by, *([compare] if compare else []), *([weight] if weight else [])]
-    first = layers.read_points(data, layer=layer, fields=fields, where=where, engine=engine)
-    setup = estimate.distance_setup(first.crs, first.label, distance=distance, target=crs, script="spread-contrast")
+    how = dict(engine=engine, distance=distance, crs=crs, script="spread-contrast", places=places)
+    first, setup = read_measured(data, layer=layer, fields=fields, where=where, **how)
     parts = [(first, weight, None)]
     if to is not None:
-        second = layers.read_points(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], engine=engine)
+        second, _ = read_measured(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], where=None, setup=setup, **how)
         names = (first.label, second.label) if first.label != second.label else ("DATASET", "--to layer")
         parts = [(first, weight, names[0]), (second, to_weight, names[1])]
     xs, ys, features, attrs, w = [], [], [], [], []
@@ -47,7 +48,7 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
 def spread_contrast(
     data, *, layer=None, compare=None, group_by=(), weight=None, to=None, to_layer=None, to_weight=None,
     tolerance=0.01, method="auto", permutations=999, seed=None, distance=None, crs=None, where=None,
-    engine="pyogrio", progress=None,
+    engine="pyogrio", as_points=None, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """One row per test (per group): the samples' mean distances, energy statistics and p-value."""
     group_by = list(group_by or ())
@@ -56,9 +57,16 @@ def spread_contrast(
             "spread-contrast needs exactly one of --compare FIELD (the field whose values are the "
             "samples) and --to (a second layer: the two layers are the samples)."
         )
+    if as_points == "fill":
+        raise ParameterError(
+            f"spread-contrast takes each feature as one point carrying its weight as a frequency, so "
+            f"{spell('as_points', 'fill')} (the weight spread over the feature) has no bound for its "
+            f"statistics here; use {spell('as_points', 'centroid')} or {spell('as_points', 'inside')}."
+        )
     permutations = check_permutations(permutations)
     x, y, feature, w, values, groups, setup = _setup(
-        data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine
+        data, layer, compare, group_by, weight, to, to_layer, to_weight, distance, crs, where, engine,
+        Places(as_points=as_points),
     )
     if values.isna().any():
         warnings.warn(f"{int(values.isna().sum())} feature(s) without a value in {compare!r} are left out.", UserWarning, stacklevel=2)
