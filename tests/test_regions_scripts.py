@@ -84,6 +84,20 @@ def test_default_spacing_meets_the_tolerance_and_is_stated():
     assert "the default for the layer and tolerance" in row["as_points"]
 
 
+def test_default_spacing_follows_the_features_not_the_layer():
+    # two unit squares 100 apart, one group each: the default spacing follows the squares, so
+    # each group's interval holds the square's published mean within the tolerance
+    frame = gpd.GeoDataFrame(
+        {"name": ["near", "far"]},
+        geometry=[shapely.box(X0, Y0, X0 + 1, Y0 + 1), shapely.box(X0 + 100, Y0, X0 + 101, Y0 + 1)],
+        crs=CRS,
+    )
+    table = toolbox.group_spread(frame, as_points="fill", group_by="name", tolerance=0.01)
+    for _, row in table.iterrows():
+        low, high = interval(row)
+        assert low <= SQUARE <= high and row["rel_bound"] <= 0.01
+
+
 def test_fill_on_degrees_holds_the_disk_value():
     # a disk of radius 1 km drawn in an azimuthal equidistant projection centred on it, then
     # taken to longitude and latitude: at 1 km the projection's distortion is ~1e-8, far below

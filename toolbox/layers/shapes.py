@@ -134,24 +134,36 @@ def _type_ids(geometry: np.ndarray, label: str) -> np.ndarray:
     return types
 
 
+def _side(minx, miny, maxx, maxy):
+    """Side of the square of a box's area; half the longer side for a thin box (a line)."""
+    width, height = maxx - minx, maxy - miny
+    return np.maximum(np.sqrt(width * height), np.maximum(width, height) / 2)
+
+
 def default_spacing(geometry: np.ndarray, tolerance: float, budget: int = _DEFAULT_BUDGET) -> float:
     """The --fill-spacing used when none is given: fine enough for ``tolerance``, within a budget.
 
-    A pair allowance of 2r = D√2 stays near ``tolerance`` times the mean distance of a compact
-    region of side s (about s/2) when D = tolerance · s / 3, s being the side of the square of the
-    layer's extent. The spacing is never so fine that the layer needs more than about ``budget``
-    sample points (area / D² for polygons, length / D for lines); then the allowance is wider and
-    the output says so through ``rel_bound``.
+    A group's mean distance is at least about that of one of its features, about half the side
+    s of the feature's extent for a compact shape; a mean allowance of about 0.77·D (whole cells)
+    stays near half of ``tolerance`` times it when D = tolerance · s / 3. s is the median
+    feature's side (never more than the layer's), so that groups as small as one typical
+    feature, such as a region holding few features, still get a tight bound. The spacing is
+    never so fine that the layer needs more than about ``budget`` sample points (area / D² for
+    polygons, length / D for lines); then the allowance is wider and the output says so through
+    ``rel_bound``.
 
     Examples
     --------
     >>> import shapely
     >>> round(default_spacing(np.array([shapely.box(0, 0, 300, 300)]), 0.01), 6)
     1.0
+    >>> boxes = np.array([shapely.box(0, 0, 30, 30), shapely.box(100, 0, 130, 30), shapely.box(0, 100, 60, 160)])
+    >>> round(default_spacing(boxes, 0.03), 6)  # the median box is 30 wide
+    0.3
     """
-    minx, miny, maxx, maxy = shapely.total_bounds(geometry)
-    # a thin extent (a line along an axis) still has a length to follow
-    side = max(math.sqrt((maxx - minx) * (maxy - miny)), max(maxx - minx, maxy - miny) / 2)
+    layer_side = float(_side(*shapely.total_bounds(geometry)))
+    feature_side = float(np.median(_side(*shapely.bounds(geometry).T)))
+    side = min(layer_side, feature_side) if feature_side > 0 else layer_side
     wanted = tolerance * side / 3
     area = float(shapely.area(geometry).sum())
     length = float(shapely.length(geometry).sum())
@@ -159,7 +171,7 @@ def default_spacing(geometry: np.ndarray, tolerance: float, budget: int = _DEFAU
         floor = math.sqrt(area / budget)
     else:
         floor = length / budget
-    return max(wanted, floor, side * 1e-6)
+    return max(wanted, floor, layer_side * 1e-6)
 
 
 def as_points(
