@@ -347,6 +347,10 @@ def test_bad_region_options_each_one_clear_message(layers_on_disk, refused, tmp_
     refused(*base, "--output-on", "regions", "--output", tmp_path / "x.gpkg", match="needs --regions")
     refused(*base, "--region-id", "code", match="--region-id needs --regions")
     refused(*base, "--regions", zones, "--region-id", "code", "--batch-rows", 100, match="--batch-rows")
+    refused(
+        *base, "--regions", zones, "--regions-layer", "districts", "--region-id", "code", "--output-on", "regions",
+        "--output", tmp_path / "onto.csv", match="layer with geometry.*cannot hold",
+    )  # fmt: skip
 
 
 @pytest.mark.parametrize("spacing", ["0", "-1"])

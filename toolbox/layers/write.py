@@ -159,6 +159,12 @@ def output_format(path: str, what: str = "table") -> str:
             f"written as {path!r} ({suffix} holds features with geometry); end the output with "
             f"{', '.join(formats)}, or use '-' for CSV on standard output."
         )
+    if what == "layer" and suffix in TABLE_FORMATS and suffix not in formats:
+        raise OutputError(
+            f"This result is a layer with geometry, which "
+            f"{path!r} ({suffix}) cannot hold; end the output with {', '.join(formats)}, or use '-' "
+            "for GeoJSON on standard output."
+        )
     if suffix not in formats:
         raise OutputError(
             f"Cannot tell the output format of {path!r}; end it with {', '.join(formats)} "
