@@ -110,6 +110,7 @@ def test_point_remoteness_notes_the_world_features_only(world):
     assert "strict=True" in str(partial[0].message)  # Python's words, not the command line's
     far = out[out["place"] == "world"]
     assert far["remote_avg"].isna().all() and far["note"].str.contains("too many").all()
+    assert far["note"].str.contains("method='exact'").all()  # the fix in Python's words
     lon, lat = towns["Alderholt"]
     d = geod_cross(lon, lat, lon, lat)
     truth = d.sum(axis=1) / (lon.size - 1)
@@ -160,3 +161,20 @@ def test_chain_strict_stops_before_the_step_writes(world, tmp_path, capsys):
     record = json.loads((tmp_path / "spread.csv.json").read_text())
     assert record["chain"] == {"file": str(chain), "step": "spread"}
     assert pd.read_csv(io.StringIO((tmp_path / "spread.csv").read_text()))["note"].notna().sum() == 1
+
+
+def test_streamed_group_spread_notes_the_world_group_too(world, tmp_path, capsys):
+    # --batch-rows: the sums come from the mergeable state, the notes the same way
+    path, towns = world
+    out = tmp_path / "spread.csv"
+    args = ["group-spread", str(path), "--group-by", "place", "--batch-rows", "5000", "--output", str(out)]
+    assert main(args) == 0
+    (line,) = warning_lines(capsys.readouterr().err)
+    assert "'world'" in line and "Alderholt" not in line
+    table = pd.read_csv(out).set_index("place")
+    assert "too many for exact geodesic sums" in table.loc["world", "note"]
+    lon, lat = towns["Brackwater"]
+    truth = np.triu(geod_cross(lon, lat, lon, lat), 1).sum()
+    assert table.loc["Brackwater", "total_lo"] <= truth <= table.loc["Brackwater", "total_hi"]
+    assert main([*args[:-1], str(tmp_path / "strict.csv"), "--strict"]) == 3
+    assert not (tmp_path / "strict.csv").exists()

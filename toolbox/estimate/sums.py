@@ -15,7 +15,7 @@ from dataclasses import replace
 import numpy as np
 
 from .. import kernels
-from ..errors import ParameterError
+from ..errors import ParameterError, spell
 from ..kernels import GroupLayout, Raw, Ticker, costs
 from . import pieces
 from .frames import local_frame
@@ -148,7 +148,9 @@ def _planar_points(lay, live, tolerance, method, progress) -> _Table:
 # geodesic: a plan of exact groups, projected groups and refused ones
 
 
-def _too_wide(what, n, frame, tolerance, smaller="split it into smaller groups (--group-by)") -> str:
+def _too_wide(what, n, frame, tolerance, smaller=None) -> str:
+    """The note of a group (or set) refused: why, and what to do, in the caller's words."""
+    smaller = smaller or f"split it into smaller groups ({spell('group_by')})"
     if not frame.usable:
         why = f"{what} {frame.reason}, so no local projection gives it a useful bound"
         fix = smaller
@@ -162,7 +164,7 @@ def _too_wide(what, n, frame, tolerance, smaller="split it into smaller groups (
         fix = (f"use a tolerance of at least {needed:.2g} or " if needed <= 0.5 else "") + smaller
     return (
         f"Geodesic sums: {why}, and its {n} points are too many for exact geodesic sums (at most "
-        f"{EXACT_FALLBACK_POINTS}); {fix}, or pass --method exact (about {n * (n - 1) / 2e6:.3g} s "
+        f"{EXACT_FALLBACK_POINTS}); {fix}, or pass {spell('method', 'exact')} (about {n * (n - 1) / 2e6:.3g} s "
         "at ~1 µs per pair)."
     )
 
@@ -445,7 +447,7 @@ def _geodesic_cross(points, tolerance, method, m0, progress, threads) -> CrossPa
                     n,
                     frame,
                     tolerance,
-                    smaller="compare groups that lie closer together (--where)",
+                    smaller=f"compare groups that lie closer together ({spell('where')})",
                 )
                 # each group on its own may still be fine: the diagonal comes from its own frame
                 within = pair_sums(points, tolerance=tolerance, method=method, threads=threads)
