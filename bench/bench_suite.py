@@ -935,6 +935,15 @@ def row_kernel_memory(rep: Report, sizes: Sizes) -> None:
 # main
 
 
+def other_sections(text: str) -> str:
+    """The sections other benchmark scripts keep in results.md between their own markers
+    (``<!-- name:start -->`` … ``<!-- name:end -->``, or ``begin`` … ``end``), kept as they are."""
+    import re
+
+    found = re.finditer(r"<!-- ?([\w-]+): ?(?:start|begin) ?-->.*?<!-- ?\1: ?end ?-->", text, flags=re.S)
+    return "".join("\n" + m.group(0) + "\n" for m in found)
+
+
 def parse_args(argv=None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="smaller sizes for a smoke run (about a minute)")
@@ -1049,7 +1058,8 @@ def main(argv=None) -> int:
     rep.say()
     rep.say(f"Load average at end: {load()}. Whole run: {time.perf_counter() - started:.0f} s.")
     if output is not None:
-        output.write_text("\n".join(rep.lines).rstrip() + "\n", encoding="utf-8")
+        kept = other_sections(output.read_text(encoding="utf-8")) if output.exists() else ""
+        output.write_text("\n".join(rep.lines).rstrip() + "\n" + kept, encoding="utf-8")
         print(f"(written to {output})", file=sys.stderr)
     return 1 if failed else 0
 

@@ -259,6 +259,11 @@ def row_test_suite(rep, root: Path) -> None:
             f"the path. Result: {summary}"
         )
         rep.say()
+        failures = [line for line in proc.stdout.splitlines() if line.startswith(("FAILED", "ERROR"))]
+        for line in failures[:10]:  # pytest's short summary (-q prints it for failures)
+            rep.say(f"- {line}")
+        if failures:
+            rep.say()
         rep.table(
             ["what", "wall time", "CPU time (all processes)"],
             [["pytest part of make test", f"{wall:.0f} s", f"{cpu:.0f} s"]],
