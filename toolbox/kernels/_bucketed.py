@@ -1,14 +1,17 @@
 """Compiled kernel: projected pair sums of many groups by bucketing instead of sorting.
 
-Along one direction, a group's projected values are dropped into B equal buckets spanning its
-radius. Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
+Along one direction, a group's projected values are dropped into B buckets spanning its radius:
+equal ones over a core of ± twice the group's RMS distance from its centre, holding three quarters
+of them, and coarser equal ones over the two tails beyond (a few remote points would otherwise
+stretch every bucket and leave the dense core in few of them). Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
 ``W_b`` and weighted position sum ``S_b`` alone (``Σ_b S_b·W_<b − W_b·S_<b``). A pair inside
 one bucket contributes between 0 and the bucket's spread of values times the pair weight
 (exactly the spread when the bucket holds two points); that uncertainty is reported. Buckets
 carrying too much of it (a dense cluster) are resolved, heaviest first, until what is left fits
 the budget: split again into sub-buckets over their own range, whose crowded ones are sorted,
 so their pairs are summed exactly. Bucket index and sums use the same float projection, and the
-index is a monotone function of it, so the ordering is exact.
+index is a monotone function of it (each of the three pieces is linear and clamped to its own
+buckets), so the ordering is exact.
 
 One (group, direction) pair is one task; tasks run in parallel threads. This module needs
 numba; without it the kernels fall back to sorting rows with numpy (exact along each
@@ -57,15 +60,31 @@ def _sorted_pair_sum(p, w):
     return out
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _bin(p, radius, core, q, mid, s_tail, s_core, buckets):
+    """Bucket of projected value p: q coarse buckets per tail beyond ±core, mid dense ones
+    between; each piece clamped to its own buckets, so the index never decreases as p grows."""
+    if q > 0 and p < -core:
+        return min(max(int((p + radius) * s_tail), 0), q - 1)
+    if q > 0 and p > core:
+        return min(max(q + mid + int((p - core) * s_tail), q + mid), buckets - 1)
+    return min(max(q + int((p + core) * s_core), q), q + mid - 1)
+
+
 @njit(cache=True, nogil=True)
-def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
+def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget):
     """(exact part, remaining uncertainty) of one group's projected pair sum on one direction."""
     if n < 2 or radius <= 0.0:
         return 0.0, 0.0, 0.0
     buckets = 16
     while 2 * buckets < n and buckets < MAX_BUCKETS:  # about two points per bucket, at most 64 Ki
         buckets *= 2
-    scale = buckets / (2.0 * radius)
+    # tails only when they are wide: a narrow one would scale its index by a huge factor
+    q = buckets // 8 if core < 0.5 * radius else 0  # buckets of each tail
+    core = core if q > 0 else radius
+    mid = buckets - 2 * q
+    s_tail = q / (radius - core) if q > 0 else 0.0
+    s_core = mid / (2.0 * core) if core > 0.0 else 0.0
     # one row per bucket (weight, weighted position, squared weights, count, min, max): a point
     # touches one cache line, not six arrays
     acc = np.zeros((buckets, 6))
@@ -74,8 +93,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
         acc[b, 5] = -np.inf
     for i in range(start, start + n):
         p = x[i] * c + y[i] * s
-        b = int((p + radius) * scale)
-        b = min(max(b, 0), buckets - 1)
+        b = _bin(p, radius, core, q, mid, s_tail, s_core, buckets)
         wi = w[i] if weighted else 1.0
         row = acc[b]
         # column 2: the first point's weight, then the product of the first two weights
@@ -136,8 +154,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget):
     wv = np.empty(offsets[-1])
     for i in range(start, start + n):
         p = x[i] * c + y[i] * s
-        b = int((p + radius) * scale)
-        b = min(max(b, 0), buckets - 1)
+        b = _bin(p, radius, core, q, mid, s_tail, s_core, buckets)
         if chosen[b]:
             pv[fill[b]] = p
             wv[fill[b]] = w[i] if weighted else 1.0
@@ -204,7 +221,7 @@ def _resolve(p, w):
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, budget):
+def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget):
     m = cos_t.size
     exact = np.zeros(groups.size * m)
     uncertain = np.zeros(groups.size * m)
@@ -212,25 +229,30 @@ def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, 
     for task in prange(groups.size * m):
         g = groups[task // m]
         k = task % m
-        e, u, c = _one_task(x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], budget)
+        e, u, c = _one_task(
+            x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget
+        )
         exact[task] = e
         uncertain[task] = u
         chain[task] = c
     return exact, uncertain, chain
 
 
-def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, budget):
+def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, budget, core=None):
     """Summed over directions: exact part, uncertainty and longest addition chain per group.
 
     ``x``, ``y`` (and ``w``, or None) are group-sorted and centred; ``radius`` bounds every
     point's distance from its group's centre; ``budget`` is the uncertainty allowed per
-    direction relative to the exact part before heavy buckets are resolved.
+    direction relative to the exact part before heavy buckets are resolved. ``core`` (per
+    group, default ``radius``: equal buckets throughout) is the half-width of the densely
+    bucketed middle.
     """
     weighted = w is not None
     wv = w if weighted else np.zeros(1)
     groups = np.asarray(groups, dtype=np.int64)
+    core = radius if core is None else core
     exact, uncertain, chain = _all_tasks(
-        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, budget
+        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget
     )
     shape = (groups.size, cos_t.size)
     return (

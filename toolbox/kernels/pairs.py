@@ -179,6 +179,7 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, budget, tick, threads):
     """Exact part and uncertainty of the projected sums of ``groups``, with the compiled kernel."""
     m = cos_t.size
     radius = lay.radius_max()
+    core = _bucket_core(lay, radius)
     exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
     chain = np.zeros(lay.n_groups)
     work = lay.counts[groups] * m
@@ -198,10 +199,31 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, budget, tick, threads):
                 sin_t,
                 radius,
                 budget,
+                core,
             )
             exact_part[batch], uncertain[batch], chain[batch] = e, u, c
             tick(m * lay.counts[batch].sum())
     return exact_part, uncertain, chain
+
+
+#: a group's core of dense buckets spans ± this many RMS distances from its centre
+_CORE_SPAN = 2.0
+
+
+def _bucket_core(lay, radius):
+    """Half-width of each group's densely bucketed core (its radius: equal buckets throughout).
+
+    Groups small enough to get under one bucket per point have a core of ±2 RMS distances from
+    their centre: remote members then no longer stretch the buckets of the dense middle, and
+    most (group, direction) tasks fit their budget without a second pass. Larger groups keep
+    equal buckets (their buckets are narrow already).
+    """
+    small = lay.counts < 2 * _compiled().MAX_BUCKETS
+    if not small.any():
+        return radius
+    r = lay.radius
+    rms = np.sqrt(np.bincount(lay.codes, r * r, lay.n_groups) / np.maximum(lay.counts, 1))
+    return np.where(small, np.minimum(_CORE_SPAN * rms, radius), radius)
 
 
 def _projected_rows(cx, cy, cw, valid, n, cos_t, sin_t) -> np.ndarray:
