@@ -18,6 +18,8 @@ UNIT_ROUNDOFF = np.finfo(np.float64).eps / 2
 #: elements per block of the exact kernels and per chunk of the padded projection layout;
 #: keeps temporary arrays near 16-32 MB whatever the group sizes
 BLOCK_ELEMENTS = 1 << 21
+#: points per block of the radius computation (two 512 KiB blocks stay in cache)
+_RADIUS_BLOCK = 1 << 16
 #: groups up to this size are summed exactly all at once in a padded (groups, s, s) block
 SMALL_EXACT = 64
 
@@ -238,8 +240,21 @@ class GroupLayout:
 
     @functools.cached_property
     def radius(self) -> np.ndarray:
-        """Distance of every point from its group's centre (computed once, then kept)."""
-        return np.sqrt(self.x * self.x + self.y * self.y)
+        """Distance of every point from its group's centre (computed once, then kept).
+
+        In blocks that stay in cache: whole-array temporaries of x² and y² would cost more (in
+        fresh memory) than the arithmetic.
+        """
+        x, y = self.x, self.y
+        out = np.empty_like(x)
+        part = np.empty(min(x.size, _RADIUS_BLOCK))
+        for a in range(0, x.size, _RADIUS_BLOCK):
+            b = min(x.size, a + _RADIUS_BLOCK)
+            r, t = out[a:b], part[: b - a]
+            np.multiply(x[a:b], x[a:b], out=r)
+            r += np.multiply(y[a:b], y[a:b], out=t)
+            np.sqrt(r, out=r)
+        return out
 
     def radius_max(self) -> np.ndarray:
         """Largest distance of a point from its group's centre, per group (0 when empty)."""

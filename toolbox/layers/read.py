@@ -313,7 +313,7 @@ def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
             f"{int(missing.sum())} of {geometry.size} features of {label} have no geometry "
             f"(null or empty); drop them first, e.g. with {spell('where')}."
         )
-    wrong = ~np.isin(types, list(_POINT_TYPES))
+    wrong = ~np.logical_or.reduce([types == t for t in _POINT_TYPES])  # isin sorts: slower
     if wrong.any():
         kinds, counts = np.unique(types[wrong], return_counts=True)
         listed = ", ".join(
