@@ -178,3 +178,28 @@ def test_streamed_group_spread_notes_the_world_group_too(world, tmp_path, capsys
     assert table.loc["Brackwater", "total_lo"] <= truth <= table.loc["Brackwater", "total_hi"]
     assert main([*args[:-1], str(tmp_path / "strict.csv"), "--strict"]) == 3
     assert not (tmp_path / "strict.csv").exists()
+
+
+def test_spread_contrast_takes_the_same_way(tmp_path):
+    # a group with one sample value cannot be tested: a note, one warning, or with strict an error
+    rng = np.random.default_rng(4)
+    x, y = rng.uniform(0, 1000, 60), rng.uniform(0, 1000, 60)
+    frame = gpd.GeoDataFrame(
+        {"ward": ["north"] * 40 + ["east"] * 20, "tenure": ["owned", "rented"] * 20 + ["owned"] * 20},
+        geometry=shapely.points(x, y),
+        crs="EPSG:32705",
+    )
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table = toolbox.spread_contrast(frame, compare="tenure", group_by="ward", permutations=19, seed=1)
+    partial = [w for w in caught if issubclass(w.category, PartialResultWarning)]
+    assert len(partial) == 1 and "'east'" in str(partial[0].message) and "'north'" not in str(partial[0].message)
+    rows = table.set_index("ward")
+    assert "nothing to compare" in rows.loc["east", "note"] and pd.isna(rows.loc["north", "note"])
+    assert 0 < rows.loc["north", "p_value"] <= 1
+    out = tmp_path / "contrast.csv"
+    with pytest.raises(PartialResultError, match="'east'"):
+        toolbox.spread_contrast(
+            frame, compare="tenure", group_by="ward", permutations=19, seed=1, strict=True, output=str(out)
+        )
+    assert not out.exists()
