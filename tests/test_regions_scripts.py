@@ -415,3 +415,23 @@ def test_point_remoteness_refuses_a_spread_feature_in_two_regions():
         toolbox.point_remoteness(across, regions=regions, region_id="code", as_points="fill", fill_spacing=20.0)
     out = toolbox.point_remoteness(across, regions=regions, region_id="code", as_points="inside")
     assert out["code"].tolist() == [11, 11] or out["code"].tolist() == [12, 11]
+
+
+def test_cross_spread_matrix_onto_regions_against_cdist(tmp_path, capfd):
+    points, regions = make_points(), make_regions()
+    src, zones, out = tmp_path / "homes.gpkg", tmp_path / "zones.gpkg", tmp_path / "matrix.gpkg"
+    pyogrio.write_dataframe(points, src, layer="homes")
+    pyogrio.write_dataframe(regions, zones, layer="districts")
+    code = main([
+        "cross-spread", str(src), "--regions", str(zones), "--region-id", "dname", "--outside-regions", "drop",
+        "--output-on", "regions", "--wide", "--tolerance", "0", "--output", str(out),
+    ])  # fmt: skip
+    assert code == 0, capfd.readouterr().err
+    written = gpd.read_file(out)
+    assert written["dname"].tolist() == ["West", "East", "Empty"]  # every region, in layer order
+    assert written.geometry.geom_equals(regions.geometry).all()
+    region = by_sjoin(points, regions, "dname")
+    xy = shapely.get_coordinates(points.geometry.values)
+    west, east = xy[(region == "West").to_numpy()], xy[(region == "East").to_numpy()]
+    assert written.loc[0, "East"] == pytest.approx(cdist(west, east).mean(), rel=1e-12)  # scipy cdist
+    assert pd.isna(written.loc[2, "West"])  # a region without points: empty values

@@ -240,6 +240,19 @@ def finish_table(table: pd.DataFrame, grouped: Grouped, places: Places):
     return table
 
 
+def rows_onto_regions(result: pd.DataFrame, ids, join):
+    """Result rows onto the region layer, row i on the region whose id is ``ids[i]`` (cross-spread).
+
+    The rows' ``from_group`` label gives way to the region id field, so that a region's rows
+    (one per to-group, or one matrix row with ``--wide``) carry its geometry and fields.
+    """
+    keyed = result.drop(columns="from_group")
+    keyed.insert(0, join.field, ids)
+    layer = region_layers.onto_regions(keyed, join)
+    layer.attrs.update(result.attrs)  # notes and wide-column names go along
+    return layer
+
+
 def method_column(methods):
     """The ``method`` column from ``sums.method``: exact, projection, or null (no total)."""
     return pd.array(methods, dtype="string")

@@ -9,13 +9,13 @@ from .. import estimate, tables
 from ..errors import InputError, ParameterError
 from ..layers import stream
 from . import _large
-from ._common import Places, group_points, method_column, read_grouped, read_measured
+from ._common import Places, group_points, method_column, read_grouped, read_measured, rows_onto_regions
 
 
 def cross_spread(
     data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method, distance, crs,
-    where, engine, as_points, fill_spacing, regions, regions_layer, region_id, outside_regions, wide, batch_rows,
-    dask_scheduler, progress=None,
+    where, engine, as_points, fill_spacing, regions, regions_layer, region_id, outside_regions, output_on, wide,
+    batch_rows, dask_scheduler, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """Mean distance between groups: every pair of one layer's groups, or groups of two layers."""
     places = Places.of(locals())  # --as-points applies to both layers, --regions to the first
@@ -40,9 +40,9 @@ def cross_spread(
             tolerance=tolerance, method=method, distance=distance, crs=crs, batch_rows=batch_rows,
             dask_scheduler=dask_scheduler,
         )  # fmt: skip
-        sums, keys, to_keys, units, made = read.sums, read.keys, read.to_keys, read.units, None
+        sums, keys, to_keys, units, made, join = read.sums, read.keys, read.to_keys, read.units, None, None
     else:
-        sums, keys, to_keys, units, made = _in_memory(
+        sums, keys, to_keys, units, made, join = _in_memory(
             data, layer=layer, group_by=group_by, weight=weight, to=to, to_layer=to_layer,
             to_group_by=to_group_by, to_weight=to_weight, tolerance=tolerance, method=method,
             distance=distance, crs=crs, where=where, engine=engine, places=places, progress=progress,
@@ -71,6 +71,9 @@ def cross_spread(
     tables.add_notes(table, sums.note[a, b], tables.noted_pairs(labels, sums.note))
     if made is not None:
         table["as_points"] = made
+    if places.output_on == "regions":  # each row goes onto its from-group's region
+        ids = keys[region_id].to_numpy()
+        return rows_onto_regions(tables.wide_matrix(table) if wide else table, ids if wide else ids[a], join)
     if not wide:
         return table
     return tables.wide_matrix(table)
@@ -98,4 +101,4 @@ def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_w
         second = group_points(other, to_group_by, to_weight, first.setup, note=crs is None)
         points = points.join(second.points)
     sums = estimate.cross_sums(points, tolerance=tolerance, method=method, progress=progress)
-    return sums, first.groups.keys, second.groups.keys, first.setup.units, first.made
+    return sums, first.groups.keys, second.groups.keys, first.setup.units, first.made, first.join
