@@ -19,7 +19,7 @@ from scipy.spatial.distance import cdist
 
 import toolbox
 from toolbox import grouping
-from toolbox.errors import GeometryError, ParameterError
+from toolbox.errors import GeometryError, ParameterError, PartialResultError
 
 GEOD = pyproj.Geod(ellps="WGS84")
 
@@ -119,3 +119,35 @@ def test_a_bad_batch_leaves_nothing_written(tmp_path, homes):
 def test_a_cluster_is_refused_for_per_feature_output(tmp_path, homes):
     with pytest.raises(ParameterError, match="one row per feature.*--batch-rows"):
         toolbox.point_remoteness(homes, group_by="zone", dask_scheduler="tcp://127.0.0.1:9")
+
+
+def test_a_streamed_group_that_cannot_be_computed_gets_a_note_and_the_rest_are_written(tmp_path, monkeypatch):
+    # a group spread over more than half the longitudes has no local frame; made "too large"
+    # for the exact fallback here by lowering the limit, it gets a note (NaN sums), the other
+    # group its values, and the output is written batch by batch all the same
+    import toolbox.estimate.sums as sums
+
+    monkeypatch.setattr(sums, "EXACT_FALLBACK_POINTS", 50)
+    rng = np.random.default_rng(4)
+    lon = np.r_[rng.uniform(-180, 180, 100), 10 + rng.uniform(0, 0.1, 100)]
+    lat = np.r_[rng.uniform(-60, 60, 100), 50 + rng.uniform(0, 0.1, 100)]
+    frame = gpd.GeoDataFrame(
+        {"zone": np.repeat(["world", "town"], 100)}, geometry=shapely.points(lon, lat), crs="EPSG:4326"
+    )
+    source, target = tmp_path / "sites.parquet", tmp_path / "remote.gpkg"
+    frame.to_parquet(source)
+    with pytest.warns(UserWarning, match="world"):
+        toolbox.point_remoteness(source, group_by="zone", batch_rows=30, output=str(target))
+    back = pyogrio.read_dataframe(target)
+    world, town = back["zone"] == "world", back["zone"] == "town"
+    assert back.loc[world, "note"].str.contains("too many for exact geodesic sums").all()
+    assert back.loc[world, "remote_avg"].isna().all()
+    assert back.loc[town, "note"].isna().all() and back.loc[town, "remote_avg"].notna().all()
+    truth = _exact_means(frame, None, True)
+    lo, hi = back.loc[town, "remote_lo"].to_numpy(), back.loc[town, "remote_hi"].to_numpy()
+    assert np.all(lo <= truth[town.to_numpy()]) and np.all(truth[town.to_numpy()] <= hi)
+    # strict: the notes are known before the first batch is written, so nothing is
+    strict = tmp_path / "strict.gpkg"
+    with pytest.raises(PartialResultError, match="world"):
+        toolbox.point_remoteness(source, group_by="zone", batch_rows=30, output=str(strict), strict=True)
+    assert not strict.exists()
