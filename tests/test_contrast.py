@@ -262,7 +262,7 @@ def test_script_small_sample_gets_a_note():
     layer.loc[layer.index[0], "tenure"] = "rented"
     with pytest.warns(UserWarning, match="could not be computed"):
         table = toolbox.spread_contrast(layer, compare="tenure", permutations=19)
-    assert "'rented' has 1 point" in table["note"].iloc[0] and "--where" in table["note"].iloc[0]
+    assert "'rented' has 1 point" in table["note"].iloc[0] and "'where'" in table["note"].iloc[0]
 
 
 @pytest.mark.parametrize(
@@ -270,7 +270,7 @@ def test_script_small_sample_gets_a_note():
     [
         ({"compare": "tenure", "permutations": 0}, ParameterError, "permutations"),
         ({"compare": "tenure", "permutations": 10**9}, ParameterError, "1,000,000"),
-        ({}, ParameterError, "--compare FIELD"),
+        ({}, ParameterError, "exactly one of 'compare'"),
         ({"compare": "tenure", "tolerance": 0, "method": "projection"}, ParameterError, "exact"),
     ],
 )
@@ -294,7 +294,7 @@ def test_script_geodesic_interval_holds_against_pyproj():
     assert row["units"] == "metre" and row["method"] == "projection"
     assert row["energy_lo"] <= expected <= row["energy_hi"]
     assert abs(row["energy"] - expected) <= 0.01 * row["between_mean"]
-    with pytest.raises(ParameterError, match="--crs"):
+    with pytest.raises(ParameterError, match="'crs'"):
         toolbox.spread_contrast(layer, compare="tenure", tolerance=0, permutations=19)
     planar = toolbox.spread_contrast(layer, compare="tenure", crs="EPSG:32705", permutations=19, seed=1)
     assert planar["units"].iloc[0] == "metre"

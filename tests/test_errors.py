@@ -537,11 +537,19 @@ def test_messages_speak_the_callers_language(homes_gpkg, tmp_path, capfd):
     # options in the other, never the other's spelling
     existing = tmp_path / "out.csv"
     existing.write_text("kept\n")
+    degrees = gpd.GeoDataFrame({"zone": ["a", "a", "b"]}, geometry=shapely.points([0, 1, 2], [50, 50, 51]), crs="EPSG:4326")
+    degrees.to_file(tmp_path / "degrees.gpkg")
     python_cases = [
         (lambda: toolbox.group_spread(homes_gpkg.path, layer="homes", output=existing), "overwrite=True"),
         (lambda: toolbox.group_spread(homes_gpkg.path), "choose one with 'layer'"),
         (lambda: toolbox.group_spread(homes_gpkg.path, layer="homes", tolerance=2), "keyword argument 'tolerance'"),
         (lambda: toolbox.run("group-spread", data=homes_gpkg.path, layer="homes", output=existing), "overwrite=True"),
+        # raised below the scripts: the estimator's distance set-up, cross-spread, spread-contrast
+        (lambda: toolbox.group_spread(degrees, distance="planar"), "distance='planar' cannot be used"),
+        (lambda: toolbox.group_spread(degrees, crs="EPSG:4326"), "The 'crs' parameter"),
+        (lambda: toolbox.cross_spread(degrees), "needs 'group_by'"),
+        (lambda: toolbox.cross_spread(degrees, group_by="zone", to_layer="x"), "'to_layer', 'to_group_by'"),
+        (lambda: toolbox.spread_contrast(degrees), "exactly one of 'compare'"),
     ]
     for call, said in python_cases:
         with pytest.raises(toolbox.PairspreadError) as raised:
@@ -552,6 +560,17 @@ def test_messages_speak_the_callers_language(homes_gpkg, tmp_path, capfd):
         ([], "choose one with --layer"),
         (["--layer", "homes", "--tolerance", "2"], "option --tolerance"),
     ]
+    on_degrees = [
+        (["group-spread", "--distance", "planar"], "--distance planar cannot be used"),
+        (["group-spread", "--crs", "EPSG:4326"], "The --crs parameter"),
+        (["cross-spread"], "needs --group-by"),
+        (["cross-spread", "--group-by", "zone", "--to-layer", "x"], "--to-layer, --to-group-by"),
+        (["spread-contrast"], "exactly one of --compare"),
+    ]
+    for args, said in on_degrees:
+        assert main([args[0], str(tmp_path / "degrees.gpkg"), *args[1:]]) == 2
+        err = capfd.readouterr().err
+        assert said in err and "=" not in err.split("Got")[0] and "'group_by'" not in err, err
     for extra, said in cli_cases:
         assert main(["group-spread", str(homes_gpkg.path), *extra]) == 2
         err = capfd.readouterr().err

@@ -19,7 +19,7 @@ import contextlib
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
-from .errors import InputError, ParameterError
+from .errors import InputError, ParameterError, spell
 from .layers import PointLayer
 from .layers.stream import LayerParts, check_batch_rows
 
@@ -127,7 +127,7 @@ def reduce_parts(
     if client is not None and not parts.on_workers:
         raise ParameterError(
             f"Only this process can read {parts.label}, not the Dask workers; give "
-            "--dask-scheduler a GeoParquet dataset (a .parquet file, a folder or a glob) or, from "
+            f"{spell('dask_scheduler')} a GeoParquet dataset (a .parquet file, a folder or a glob) or, from "
             "Python, a dask-geopandas GeoDataFrame."
         )
     if client is None:
@@ -189,14 +189,14 @@ def connected(address) -> Iterator[Any]:
         address = address.scheduler_address
     text = str(address).strip()
     if not text:
-        raise ParameterError("--dask-scheduler needs an address such as tcp://host:8786.")
+        raise ParameterError(f"{spell('dask_scheduler')} needs an address such as tcp://host:8786.")
     try:
         client = Client(text, timeout=CONNECT_TIMEOUT, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
         reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(
             f"No Dask scheduler answered at {text!r} within {CONNECT_TIMEOUT} s ({reason}); "
-            "check --dask-scheduler (e.g. tcp://host:8786) or start one with `dask scheduler` "
+            f"check {spell('dask_scheduler')} (e.g. tcp://host:8786) or start one with `dask scheduler` "
             "and workers with `dask worker ADDRESS`."
         ) from None
     try:

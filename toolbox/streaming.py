@@ -36,7 +36,7 @@ import numpy as np
 from . import estimate, grouping
 from .batchkeys import KeyRegistry, KeyTable, merge_key_tables
 from .cluster import reduce_parts
-from .errors import InputError
+from .errors import InputError, spell
 from .estimate import cross_state
 from .estimate.state import Survey
 from .layers import PointLayer
@@ -372,7 +372,7 @@ def _all(survey: Survey) -> np.ndarray:
 
 def _empty(parts: LayerParts) -> InputError:
     return InputError(
-        f"{parts.label} has no feature to compute with; check the input and any --where filter."
+        f"{parts.label} has no feature to compute with; check the input and any {spell('where')} filter."
     )
 
 

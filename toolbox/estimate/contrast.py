@@ -17,7 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import InputError, ParameterError
+from ..errors import InputError, ParameterError, spell
 from ..kernels import UNIT_ROUNDOFF, Raw
 from ..kernels.energy import EXACT_MAX_POINTS, energy_sums
 from .frames import local_frame
@@ -139,11 +139,11 @@ def energy_test(
         if m == 0:
             raise ParameterError(
                 "Exact sums (tolerance 0, method exact) are planar only; for geodesic distances use "
-                "a tolerance above 0 (the interval then includes the local projection), or --crs."
+                f"a tolerance above 0 (the interval then includes the local projection), or {spell('crs')}."
             )
         frame = local_frame(x, y, points.distance.a, points.distance.f)
         if not frame.usable:
-            raise InputError(f"The points {frame.reason}: too wide for one local projection; pass --crs.")
+            raise InputError(f"The points {frame.reason}: too wide for one local projection; pass {spell('crs')}.")
         x, y, method = frame.x, frame.y, "projection"
     n, k = np.size(x), int(n_samples if n_samples is not None else np.max(labels) + 1)
     exact = m == 0 or (method == "auto" and _cost_exact(n, k) <= _cost_projection(n, m))

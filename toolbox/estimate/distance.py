@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import grouping
-from ..errors import InputError, ParameterError
+from ..errors import InputError, ParameterError, spell
 
 __all__ = ["DISTANCES", "DistanceSetup", "distance_setup"]
 
@@ -101,18 +101,18 @@ def _transform(x, y, source, target, label):
             f"{int(bad.sum())} point(s) of {label} cannot be transformed from {source.name} to "
             f"{target.name} (first at index {int(np.flatnonzero(bad)[0])}); they lie outside the "
             "area where the transformation is defined. Choose another CRS or filter them out "
-            "with --where."
+            f"with {spell('where')}."
         )
     return tx, ty
 
 
 def _planar_on_geographic(crs, label: str) -> InputError:
     return InputError(
-        f"--distance planar cannot be used on {label}: it is in a geographic CRS ({crs.name}), so "
+        f"{spell('distance', 'planar')} cannot be used on {label}: it is in a geographic CRS ({crs.name}), so "
         "its coordinates are degrees of longitude and latitude, and a straight line between "
         "them has no length in metres (a degree of longitude shrinks from 111 km at the equator "
-        "to nothing at the poles). Leave --distance out (or pass --distance geodesic) for "
-        "ellipsoidal distances in metres, or pass --crs with a projected CRS suited to the area "
+        f"to nothing at the poles). Leave {spell('distance')} out (or pass {spell('distance', 'geodesic')}) for "
+        f"ellipsoidal distances in metres, or pass {spell('crs')} with a projected CRS suited to the area "
         "(a UTM zone or a national grid) for planar distances there."
     )
 
@@ -155,19 +155,19 @@ def distance_setup(
     """
     if distance is not None and distance not in DISTANCES:
         raise ParameterError(
-            f"The --distance parameter of {script} must be one of {', '.join(DISTANCES)}. Got "
+            f"The {spell('distance')} parameter of {script} must be one of {', '.join(DISTANCES)}. Got "
             f"{distance!r} instead."
         )
     if target is not None:
         if distance == "geodesic":
             raise ParameterError(
-                f"--crs and --distance geodesic cannot be combined in {script}: --crs reprojects "
+                f"{spell('crs')} and {spell('distance', 'geodesic')} cannot be combined in {script}: {spell('crs')} reprojects "
                 "the input and computes planar distances in that CRS. Leave out one of them."
             )
         chosen = _parse_crs(target, script)
         if crs is None:
             raise InputError(
-                f"{label} has no CRS, so it cannot be reprojected to --crs {target!r}; assign its CRS first."
+                f"{label} has no CRS, so it cannot be reprojected to {spell('crs', target)}; assign its CRS first."
             )
         axes = chosen.axis_info
         return DistanceSetup("planar", axes[0].unit_name if axes else "unknown", chosen)
@@ -190,7 +190,7 @@ def distance_setup(
     if ellipsoid is None or geodetic is None:
         raise InputError(
             f"The CRS of {label} ({crs.name}) has no ellipsoid, so geodesic distances cannot be "
-            "computed; use --distance planar."
+            f"computed; use {spell('distance', 'planar')}."
         )
     a = float(ellipsoid.semi_major_metre)
     rf = float(ellipsoid.inverse_flattening)
@@ -205,14 +205,14 @@ def _parse_crs(text, script):
         chosen = pyproj.CRS.from_user_input(text)
     except (pyproj.exceptions.CRSError, TypeError) as exc:
         raise ParameterError(
-            f"The --crs parameter of {script} must be a CRS pyproj accepts (for example "
+            f"The {spell('crs')} parameter of {script} must be a CRS pyproj accepts (for example "
             f"EPSG:32633, a WKT string or a PROJ string). Got {text!r} instead: {exc}"
         ) from exc
     if not chosen.is_projected:
         raise ParameterError(
-            f"The --crs parameter of {script} must be a projected CRS, since distances are then "
+            f"The {spell('crs')} parameter of {script} must be a projected CRS, since distances are then "
             f"planar in it. Got {text!r} instead ({chosen.name}, "
             f"{'a geographic CRS' if chosen.is_geographic else 'not a projected CRS'}); leave "
-            "--crs out for geodesic distances."
+            f"{spell('crs')} out for geodesic distances."
         )
     return chosen

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 import pyogrio
 
-from ..errors import ParameterError
+from ..errors import ParameterError, spell
 from .read import (
     PointLayer,
     _check_fields,
@@ -203,7 +203,7 @@ def layer_parts(
     if engine == "fiona":
         raise ParameterError(
             "Reading in batches goes through pyogrio's Arrow stream, which the fiona engine lacks; "
-            "leave out --engine fiona, or leave out --batch-rows to read the whole layer with fiona."
+            f"leave out {spell('engine', 'fiona')}, or leave out {spell('batch_rows')} to read the whole layer with fiona."
         )
     path, name, label, available = _open(data, layer, engine, where)
     info = pyogrio.read_info(path, layer=name)

@@ -339,7 +339,7 @@ def check_output(
     if sidecar and kind in ("csv", "shp") and note.exists() and not overwrite:
         raise OutputError(
             f"{str(note)!r} (where the provenance record of {path!r} goes) already exists; pass "
-            "--overwrite to replace it, or --no-sidecar to write none."
+            f"{spell('overwrite', True)} to replace it, or {spell('no_sidecar', True)} to write none."
         )
     if target.is_dir():
         raise OutputError(f"The output {path!r} is a folder; name a file.")

@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from .. import estimate, tables
-from ..errors import InputError, ParameterError
+from ..errors import InputError, ParameterError, spell
 from ..layers import stream
 from . import _large
 from ._common import Places, group_points, method_column, read_grouped, read_measured, rows_onto_regions
@@ -21,11 +21,11 @@ def cross_spread(
     places = Places.of(locals())  # --as-points applies to both layers, --regions to the first
     if to is None and not group_by and regions is None:
         raise ParameterError(
-            "cross-spread on one layer needs --group-by or --regions (the groups to compare); or give a "
-            "second layer with --to."
+            f"cross-spread on one layer needs {spell('group_by')} or {spell('regions')} (the groups to compare); "
+            f"or give a second layer with {spell('to')}."
         )
     if to is None and (to_layer or to_group_by or to_weight):
-        raise ParameterError("--to-layer, --to-group-by and --to-weight need --to.")
+        raise ParameterError(f"{spell('to_layer')}, {spell('to_group_by')} and {spell('to_weight')} need {spell('to')}.")
     large = dict(engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler)
     whole = places.read_whole(data, batch_rows, dask_scheduler) or (to is not None and places.read_whole(to, None, None))
     parts = None if whole else _large.large_parts(data, layer=layer, where=where, **large)

@@ -10,7 +10,7 @@ from __future__ import annotations
 from .. import layers
 
 
-def keep_rows(data, *, layer=None, where, engine="pyogrio"):
+def keep_rows(data, *, layer, where, engine):
     """The features of ``data`` for which ``where`` holds, every field and the geometry kept."""
     frame, _ = layers.read_layer(data, layer=layer, where=where, engine=engine)
     return frame.copy()

@@ -27,7 +27,7 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
     parts = [(first, weight, None)]
     if to is not None:
         second, _ = read_measured(to, layer=to_layer, fields=[*group_by, *([to_weight] if to_weight else [])], where=None, setup=setup, **how)
-        names = (first.label, second.label) if first.label != second.label else ("DATASET", "--to layer")
+        names = (first.label, second.label) if first.label != second.label else ("first layer", "second layer")
         parts = [(first, weight, names[0]), (second, to_weight, names[1])]
     xs, ys, features, attrs, w = [], [], [], [], []
     for points, field, name in parts:
@@ -46,16 +46,15 @@ def _setup(data, layer, compare, group_by, weight, to, to_layer, to_weight, dist
 
 
 def spread_contrast(
-    data, *, layer=None, compare=None, group_by=(), weight=None, to=None, to_layer=None, to_weight=None,
-    tolerance=0.01, method="auto", permutations=999, seed=None, distance=None, crs=None, where=None,
-    engine="pyogrio", as_points=None, progress=None,
+    data, *, layer, compare, group_by, weight, to, to_layer, to_weight, tolerance, method, permutations, seed,
+    distance, crs, where, engine, as_points, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """One row per test (per group): the samples' mean distances, energy statistics and p-value."""
     group_by = list(group_by or ())
     if (compare is None) == (to is None):
         raise ParameterError(
-            "spread-contrast needs exactly one of --compare FIELD (the field whose values are the "
-            "samples) and --to (a second layer: the two layers are the samples)."
+            f"spread-contrast needs exactly one of {spell('compare')} (the field whose values are the "
+            f"samples) and {spell('to')} (a second layer: the two layers are the samples)."
         )
     if as_points == "fill":
         raise ParameterError(
@@ -125,7 +124,7 @@ def _problem(names, counts, weights, what):
         return f"one value of {what}{only} in this group: nothing to compare"
     small = [f"{n!r} has {c} point{'s' if c != 1 else ''}" for n, c in zip(names, counts, strict=True) if c < 2]
     if small:
-        return "; ".join(small) + ": a sample needs at least 2 points (group more coarsely or drop that value with --where)"
+        return "; ".join(small) + f": a sample needs at least 2 points (group more coarsely or drop that value with {spell('where')})"
     empty = [repr(n) for n, v in zip(names, weights, strict=True) if not v > 0]
     if empty:
         return f"sample(s) {', '.join(empty)} have zero total weight: nothing to compare"
