@@ -16,6 +16,7 @@ import os
 import re
 import shutil
 import signal
+import time
 from pathlib import Path
 
 import geopandas as gpd
@@ -603,6 +604,28 @@ def test_interrupt_just_after_the_rename_says_the_output_was_written(homes_gpkg,
     assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
     assert capfd.readouterr().err == f"pairspread: interrupted after writing {target}.\n"
     assert target.is_file()
+
+
+def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd):
+    # a compiled library that clears the KeyboardInterrupt while it loads (pandas' modules did,
+    # about 1 run in 20) must not let the run go on to write its output
+    from toolbox.layers import write as write_module
+
+    real = write_module.csv_text
+
+    def swallowing(*args, **kwargs):
+        try:
+            os.kill(os.getpid(), signal.SIGINT)  # Ctrl-C inside library code ...
+            time.sleep(1)  # (the handler runs here)
+        except KeyboardInterrupt:
+            pass  # ... which clears it and carries on
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(write_module, "csv_text", swallowing)
+    target = tmp_path / "out.csv"
+    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
+    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
+    assert not target.exists()
 
 
 def test_api_docstring_states_python_types():

@@ -1308,7 +1308,11 @@ def test_ctrl_c_while_starting_up(tmp_path, small_inputs, library):
     data, layer = small_inputs["gpkg"]
     console = str(Path(sys.executable).with_name("pairspread"))
     needle = f"site-packages/{library}"
-    for attempt in range(5):  # the library's import must be seen under way; a fast run may finish first
+    # Some libraries swallow the KeyboardInterrupt while they load (pandas' compiled modules did,
+    # about 1 run in 20: the run went on and wrote its output); so several runs are interrupted,
+    # and every one that was caught loading must end with 130 and nothing written.
+    caught_runs = 0
+    for attempt in range(8):
         out = tmp_path / f"out{attempt}.csv"
         proc = subprocess.Popen(
             [console, "group-spread", str(data), "--layer", layer, "--output", str(out)],
@@ -1322,11 +1326,11 @@ def test_ctrl_c_while_starting_up(tmp_path, small_inputs, library):
         caught = proc.poll() is None
         proc.send_signal(signal.SIGINT)
         stdout, stderr = proc.communicate(timeout=120)
-        if caught and proc.returncode != 0:
-            break
-    else:
-        pytest.skip(f"{library} was never seen loading before the run ended")
-    assert proc.returncode == 130, stderr
-    assert "Traceback" not in stderr
-    assert one_error_line(stderr) == "pairspread: interrupted; no output was written.", stderr
-    assert stdout == "" and not out.exists()
+        if not caught:  # the run ended before the library was seen loading (a quick machine)
+            continue
+        caught_runs += 1
+        assert proc.returncode == 130, stderr
+        assert "Traceback" not in stderr
+        assert one_error_line(stderr) == "pairspread: interrupted; no output was written.", stderr
+        assert stdout == "" and not out.exists()
+    assert caught_runs >= 4, f"{library} was seen loading in only {caught_runs} of 8 runs"

@@ -52,7 +52,7 @@ _LAZY = {
     ),
 }
 _SUBMODULES = {
-    "api", "chain", "cli", "errors", "estimate", "grouping", "kernels", "layers", "manifest", "runner", "scripts"
+    "api", "chain", "cli", "errors", "estimate", "grouping", "interrupts", "kernels", "layers", "manifest", "runner", "scripts"
 }
 
 if TYPE_CHECKING:  # the names as type checkers and editors should see them

@@ -14,7 +14,7 @@ import sys
 import warnings
 from collections.abc import Sequence
 
-from . import __version__
+from . import __version__, interrupts
 from .errors import PairspreadError, ParameterError, sentence
 from .manifest import Param, Script, get_script, scripts
 from .runner import run_script
@@ -185,6 +185,7 @@ def _run(argv: list[str]) -> int:
     values = {p.name: getattr(args, p.name) for p in script.params}
     values = {k: v for k, v in values.items() if v is not None}
     result, written = run_script(script, values, cli=True)
+    interrupts.check()  # a Ctrl-C swallowed by a library during the run still stops it here
     if written is None:
         _print_table(result)
     elif written != "standard output" and not values.get("quiet"):
@@ -203,7 +204,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in argv
     before = len(_committed())
-    with warnings.catch_warnings(record=True) as caught:
+    with warnings.catch_warnings(record=True) as caught, interrupts.watching():
         warnings.simplefilter("always")
         try:
             return _run(argv)

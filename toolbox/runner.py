@@ -13,6 +13,7 @@ import sys
 import warnings
 from typing import Any
 
+from . import interrupts
 from .errors import ParameterError, PartialResultError, PartialResultWarning, current_caller, speaking, spell
 from .manifest import DATASET_KINDS, Script, get_script, validate
 from .progress import ProgressLine
@@ -132,6 +133,7 @@ def _run_script(
     from . import layers  # here, not at the top: the command line's list/--help stay light
     from .kernels import thread_limit
 
+    interrupts.check()  # the imports above are where libraries may swallow a Ctrl-C
     values = validate(script, values, cli=cli)
     runner_params = {p.name for p in script.params if p.runner}
     target = next((p for p in script.params if p.kind in RESULT_WHAT), None)
@@ -165,6 +167,7 @@ def _run_script(
         line.phase("reading")
         with thread_limit(values.get("threads")):
             result = function(**call)
+        interrupts.check()
         notes = _check_notes(script, result, bool(values.get("strict")))
         written = None
         if output is not None:

@@ -22,6 +22,7 @@ from pathlib import Path
 import pandas as pd
 import pyogrio
 
+from .. import interrupts
 from ..errors import OutputError, PairspreadError, ParameterError, param_noun, spell
 from ..tables import csv_text
 from .batched import FrameBatches, write_batches
@@ -124,7 +125,7 @@ def _interrupts_deferred() -> Iterator[None]:
     """
     if (
         threading.current_thread() is not threading.main_thread()
-        or signal.getsignal(signal.SIGINT) is not signal.default_int_handler
+        or not interrupts.is_ours(signal.getsignal(signal.SIGINT))
     ):
         yield
         return
@@ -136,6 +137,7 @@ def _interrupts_deferred() -> Iterator[None]:
         signal.signal(signal.SIGINT, previous)
     if pending:
         raise KeyboardInterrupt
+    interrupts.check()
 
 
 def _signature(path: Path) -> tuple | None:
@@ -722,6 +724,7 @@ def _write_once(
             produced.append(note)
         if kind == "gpkg" and _signature(target) != before:
             return False  # another program wrote into it meanwhile: our copy lacks its change
+        interrupts.check()  # a Ctrl-C that a library swallowed still means: write nothing
         with _interrupts_deferred():  # renamed and recorded together, or neither
             _move_into_place(produced, target.parent, scratch)
             COMMITTED.append(str(path))
