@@ -282,7 +282,7 @@ def test_every_output_records_how_it_was_made(tmp_path, suffix):
 def test_sidecar_is_not_overwritten_without_overwrite(tmp_path):
     (tmp_path / "out.csv.json").write_text("mine")
     record = provenance("group-spread", {"data": "in.gpkg"})
-    with pytest.raises(OutputError, match="no-sidecar"):
+    with pytest.raises(OutputError, match="no_sidecar=True"):
         write_output(pd.DataFrame({"a": [1]}), str(tmp_path / "out.csv"), record=record)
     write_output(pd.DataFrame({"a": [1]}), str(tmp_path / "out.csv"), record=record, sidecar=False)
     assert (tmp_path / "out.csv.json").read_text() == "mine"
