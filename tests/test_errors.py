@@ -628,6 +628,25 @@ def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_pa
     assert not target.exists()
 
 
+def test_interrupt_turned_into_another_error_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd):
+    # pandas' compiled start-up turned a Ctrl-C into "ImportError: pd_parser.c could not import
+    # module pandas", which the run reported as an unexpected failure (exit 1)
+    from toolbox.layers import write as write_module
+
+    def converting(*args, **kwargs):
+        try:
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(1)
+        except KeyboardInterrupt:
+            raise ImportError("pd_parser.c could not import module pandas") from None
+
+    monkeypatch.setattr(write_module, "csv_text", converting)
+    target = tmp_path / "out.csv"
+    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
+    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
+    assert not target.exists()
+
+
 def test_api_docstring_states_python_types():
     doc = toolbox.group_spread.__doc__
     assert "threads : int" in doc and "tolerance : float" in doc and "overwrite : bool" in doc

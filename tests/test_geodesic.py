@@ -311,10 +311,13 @@ def test_wide_large_group_is_refused():
     assert r.note[1] == "" and r.total[1] == pytest.approx(reference_total(near_lon, near_lat), rel=0.01)
     p = geodesic_point_sums(lon, lat, np.zeros(n, dtype=int))
     assert "too many for exact geodesic sums" in p.note[0] and np.isnan(p.total).all()
-    # the world-wide group beside the small one: together too many points for exact sums (each
-    # group on its own is settled from its own frame, the small one exactly and cheaply)
-    c = geodesic_cross_sums(np.r_[lon, near_lon], np.r_[lat, near_lat], codes)
+    # two compact towns on opposite sides of the Earth: each fine in its own frame, together too
+    # wide for one and too many points for exact sums, so only the pair between them is refused
+    half = estimate.EXACT_FALLBACK_POINTS // 2 + 1
+    (alon, alat), (blon, blat) = disc(rng, 10.0, 50.0, 20, half), disc(rng, -170.0, -50.0, 20, half)
+    c = geodesic_cross_sums(np.r_[alon, blon], np.r_[alat, blat], np.repeat([0, 1], half))
     assert "combined set of points" in c.note[0, 1] and np.isnan(c.total[0, 1])
+    assert c.note[0, 0] == c.note[1, 1] == "" and np.isfinite([c.total[0, 0], c.total[1, 1]]).all()
     with pytest.raises(InputError, match="too many for exact geodesic sums"):
         estimate.raise_for_notes(r)
 

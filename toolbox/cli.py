@@ -199,6 +199,15 @@ def _committed() -> list[str]:
     return list(writer.COMMITTED) if writer is not None else []
 
 
+def _interrupted(before: int) -> int:
+    done = _committed()[before:]
+    if done:  # the interrupt came after an output was renamed into place
+        print(f"pairspread: interrupted after writing {', '.join(done)}.", file=sys.stderr)
+    else:
+        print("pairspread: interrupted; no output was written.", file=sys.stderr)
+    return 130
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the console script and of ``python -m toolbox``."""
     argv = list(sys.argv[1:] if argv is None else argv)
@@ -209,20 +218,19 @@ def main(argv: Sequence[str] | None = None) -> int:
         try:
             return _run(argv)
         except PairspreadError as exc:
+            if interrupts.seen() and not debug:  # a library turned the Ctrl-C into an error of its own
+                return _interrupted(before)
             if debug:
                 raise
             print(f"pairspread: error: {sentence(str(exc))}", file=sys.stderr)
             return exc.exit_code
         except KeyboardInterrupt:
-            done = _committed()[before:]
-            if done:  # the interrupt came after an output was renamed into place
-                print(f"pairspread: interrupted after writing {', '.join(done)}.", file=sys.stderr)
-            else:
-                print("pairspread: interrupted; no output was written.", file=sys.stderr)
-            return 130
+            return _interrupted(before)
         except BrokenPipeError:
             return 141
         except Exception as exc:  # a bug or an unforeseen library failure: still one line
+            if interrupts.seen() and not debug:  # e.g. pandas' start-up: "could not import module pandas"
+                return _interrupted(before)
             if debug:
                 raise
             print(

@@ -3,12 +3,15 @@
 Python turns SIGINT into a ``KeyboardInterrupt`` raised in whatever Python code runs next. When
 that code is a compiled extension's start-up (pandas' Cython modules import others while they
 load), the extension may clear the exception and carry on: the interrupt is gone and the run
-goes on to write its output, exiting 0 (seen about 1 run in 20 with Ctrl-C during pandas' import).
+goes on to write its output, exiting 0 (seen about 1 run in 20 with Ctrl-C during pandas' import),
+or it turns the interrupt into an error of its own ("ImportError: pd_parser.c could not import
+module pandas").
 
 While the command line runs, :func:`watching` installs a handler that also *remembers* the
 interrupt; :func:`check` raises it again at the points where it matters (after the start-up
-imports, before anything is written or printed), so a Ctrl-C always ends the run with nothing
-written.
+imports, before anything is written or printed), and the command line reports any error raised
+after a Ctrl-C as the interruption it is, so a Ctrl-C always ends the run with status 130 and
+nothing written.
 """
 
 from __future__ import annotations
