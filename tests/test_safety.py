@@ -1309,10 +1309,11 @@ def test_ctrl_c_while_starting_up(tmp_path, small_inputs, library):
     console = str(Path(sys.executable).with_name("pairspread"))
     needle = f"site-packages/{library}"
     # Some libraries swallow the KeyboardInterrupt while they load (pandas' compiled modules did,
-    # about 1 run in 20: the run went on and wrote its output); so several runs are interrupted,
-    # and every one that was caught loading must end with 130 and nothing written.
+    # about 1 run in 20: the run went on and wrote its output; or turned it into an ImportError);
+    # so several runs are interrupted, and every one caught loading must end with 130 and nothing
+    # written. (tests/test_errors.py checks both library behaviours deterministically.)
     caught_runs = 0
-    for attempt in range(8):
+    for attempt in range(4):
         out = tmp_path / f"out{attempt}.csv"
         proc = subprocess.Popen(
             [console, "group-spread", str(data), "--layer", layer, "--output", str(out)],
@@ -1333,4 +1334,4 @@ def test_ctrl_c_while_starting_up(tmp_path, small_inputs, library):
         assert "Traceback" not in stderr
         assert one_error_line(stderr) == "pairspread: interrupted; no output was written.", stderr
         assert stdout == "" and not out.exists()
-    assert caught_runs >= 4, f"{library} was seen loading in only {caught_runs} of 8 runs"
+    assert caught_runs >= 2, f"{library} was seen loading in only {caught_runs} of 4 runs"
