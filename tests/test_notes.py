@@ -203,3 +203,15 @@ def test_spread_contrast_takes_the_same_way(tmp_path):
             frame, compare="tenure", group_by="ward", permutations=19, seed=1, strict=True, output=str(out)
         )
     assert not out.exists()
+
+
+def test_a_shapefile_says_that_it_cuts_the_notes(world, tmp_path, capsys):
+    # dBASE text fields hold 254 bytes (common practice); the notes are longer, and GDAL cuts quietly
+    path, _ = world
+    out = tmp_path / "far.shp"
+    assert main(["point-remoteness", str(path), "--group-by", "place", "--output", str(out), "--quiet"]) == 0
+    lines = warning_lines(capsys.readouterr().err)
+    assert len(lines) == 2 and any("'world'" in line for line in lines)
+    assert any("254 bytes" in line and "'note'" in line and "GeoPackage" in line for line in lines)
+    far = pyogrio.read_dataframe(out)
+    assert far.loc[far["place"] == "world", "note"].str.startswith("Geodesic sums").all()

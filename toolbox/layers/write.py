@@ -288,6 +288,28 @@ def shapefile_names(fields: Sequence[str]) -> dict[str, str]:
     return names
 
 
+#: longest text a .dbf field holds, in bytes (dBASE's limit; common practice)
+_DBF_TEXT_BYTES = 254
+
+
+def _warn_long_texts(frame: pd.DataFrame, fields: Sequence[str]) -> None:
+    """Say which text fields a Shapefile will cut at 254 bytes (GDAL cuts them quietly)."""
+    cut = []
+    for name in fields:
+        column = frame[name]
+        if pd.api.types.is_object_dtype(column) or pd.api.types.is_string_dtype(column):
+            longest = max((len(str(v).encode("utf-8")) for v in column.dropna()), default=0)
+            if longest > _DBF_TEXT_BYTES:
+                cut.append(repr(str(name)))
+    if cut:
+        warnings.warn(
+            f"Shapefile text fields hold at most {_DBF_TEXT_BYTES} bytes, so the longer values of "
+            f"{', '.join(cut)} are cut; write a GeoPackage (.gpkg) to keep them whole.",
+            UserWarning,
+            stacklevel=3,
+        )
+
+
 def _shapefile_parts(target: Path) -> list[Path]:
     return [target.with_suffix(suffix) for suffix in _SHAPEFILE_PARTS]
 
@@ -712,6 +734,7 @@ def _write_once(
             pyogrio.write_dataframe(frame, tmp, driver="GeoJSON", **extra)
         else:  # names are shortened here, at a character boundary, rather than by GDAL
             renamed = _shapefile_renames(fields)
+            _warn_long_texts(frame, fields)
             if renamed and record is not None:  # the sidecar keeps the mapping
                 record = {**record, "shapefile_fields": renamed}
             out = frame.rename(columns=renamed)
