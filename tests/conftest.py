@@ -14,6 +14,7 @@ from __future__ import annotations
 import io
 import os
 import shutil
+import signal
 import subprocess
 import sys
 import tempfile
@@ -398,3 +399,15 @@ def assert_same_table(left: pd.DataFrame, right: pd.DataFrame, *, rtol: float = 
 def same_table():
     """:func:`assert_same_table` as a fixture, for test modules."""
     return assert_same_table
+
+
+@pytest.fixture
+def ctrl_c_handled():
+    """Python's own Ctrl-C handler in this process for the test, whatever the test run inherited.
+
+    A run started in the background of a non-interactive shell (``make test &``, ``nohup``)
+    inherits SIGINT ignored, and Python then installs no handler of its own.
+    """
+    previous = signal.signal(signal.SIGINT, signal.default_int_handler)
+    yield
+    signal.signal(signal.SIGINT, previous)

@@ -589,7 +589,7 @@ def test_messages_on_the_command_line_read_as_sentences(capfd, homes_gpkg):
     assert "pairspread: warning: No feature of layer 'homes'" in err, err
 
 
-def test_interrupt_just_after_the_rename_says_the_output_was_written(homes_gpkg, tmp_path, monkeypatch, capfd):
+def test_interrupt_just_after_the_rename_says_the_output_was_written(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
     # a Ctrl-C that lands after the output is in place must not claim that nothing was written
     from toolbox.layers import write as write_module
 
@@ -606,7 +606,7 @@ def test_interrupt_just_after_the_rename_says_the_output_was_written(homes_gpkg,
     assert target.is_file()
 
 
-def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd):
+def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
     # a compiled library that clears the KeyboardInterrupt while it loads (pandas' modules did,
     # about 1 run in 20) must not let the run go on to write its output
     from toolbox.layers import write as write_module
@@ -628,7 +628,7 @@ def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_pa
     assert not target.exists()
 
 
-def test_interrupt_turned_into_another_error_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd):
+def test_interrupt_turned_into_another_error_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
     # pandas' compiled start-up turned a Ctrl-C into "ImportError: pd_parser.c could not import
     # module pandas", which the run reported as an unexpected failure (exit 1)
     from toolbox.layers import write as write_module

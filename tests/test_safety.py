@@ -139,6 +139,12 @@ def one_error_line(stderr: str) -> str:
     return lines[0]
 
 
+def ctrl_c_default() -> None:
+    """``preexec_fn`` for a child that a test interrupts: SIGINT back to its default action
+    (a test run started in the background passes SIGINT ignored on to its children)."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def env_for_subprocess(**extra: str) -> dict[str, str]:
     env = {**os.environ, **extra}
     env.pop("PYTHONWARNINGS", None)
@@ -800,7 +806,8 @@ def test_ctrl_c_during_a_long_run(tmp_path, big_input, project):
 
     def start(phase):
         return subprocess.Popen(
-            runs[phase], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env_for_subprocess()
+            runs[phase], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env_for_subprocess(),
+            preexec_fn=ctrl_c_default,
         )
 
     procs = {}
@@ -1321,6 +1328,7 @@ def test_ctrl_c_while_starting_up(tmp_path, small_inputs, library):
             stderr=subprocess.PIPE,
             text=True,
             env=env_for_subprocess(),
+            preexec_fn=ctrl_c_default,
         )
         while proc.poll() is None and not _mapped(proc.pid, needle):
             time.sleep(0.0002)
