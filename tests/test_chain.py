@@ -115,7 +115,7 @@ BROKEN = {
     ),
     "unknown parameter": (
         'script = "group-spread"\nparams = { data = { from = "first" }, group_bye = "zone" }',
-        r"step 'last': group-spread has no parameter 'group_bye'; did you mean group_by\?",
+        r"step 'last': group-spread has no parameter 'group_bye'; did you mean group_by( or group_shape)?\?",
     ),
     "bad value": (
         'script = "group-spread"\nparams = { data = { from = "first" }, tolerance = 2 }',

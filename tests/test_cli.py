@@ -492,8 +492,8 @@ def test_describe_json(run_main, result_columns):
     tolerance = next(p for p in described["params"] if p["name"] == "tolerance")
     assert tolerance["range"] == [0.0, 0.5] and tolerance["default"] == 0.01
     # the documented columns are the ones the script writes, in the same order (as_points only
-    # with --as-points)
-    assert [c for c in described["columns"] if c not in ("group field(s)", "as_points")] == result_columns
+    # with --as-points, geometry only with --group-shape)
+    assert [c for c in described["columns"] if c not in ("group field(s)", "as_points", "geometry")] == result_columns
 
 
 def test_kinds_and_positional_are_the_packs_own(run_main, capsys):

@@ -313,7 +313,7 @@ def test_area_map_has_colour_bar_and_is_not_blank(tmp_path):
     regions = districts()
     regions["mean_dist"] = [1.0, 2.0, np.nan, 3.0]
     regions["units"] = "metre"
-    path = draw_map("group-spread", regions, str(tmp_path / "map.png"), subject="district")
+    path = draw_map("group-spread", regions, str(tmp_path / "map.png"), shapes="regions")
     image = _png(path)
     assert image.shape[0] > 400 and image.shape[1] > 500
     rgb = image[..., :3].reshape(-1, 3)
@@ -330,7 +330,7 @@ def test_map_refuses_other_suffixes_and_existing_files(tmp_path):
     with pytest.raises(ParameterError, match=r"\.png"):
         check_map(str(tmp_path / "map.pdf"))
     (tmp_path / "map.png").write_bytes(b"mine")
-    with pytest.raises(OutputError, match="--overwrite"):
+    with pytest.raises(OutputError, match="overwrite=True"):
         check_map(str(tmp_path / "map.png"))
 
 

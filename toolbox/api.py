@@ -27,6 +27,7 @@ _PYTHON_TYPES = {
     "flag": "bool",
     "result-table-file": "str or os.PathLike",
     "result-layer-file": "str or os.PathLike",
+    "picture-file": "str or os.PathLike",
 }
 
 

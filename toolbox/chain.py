@@ -333,7 +333,7 @@ def load_chain(
                     )
                 params[pname] = ref
                 after.append(ref.step)
-            elif p is not None and (_is_input(p) or _is_output(p)):
+            elif p is not None and (_is_input(p) or _is_output(p) or p.kind == "picture-file"):
                 base = Path.cwd() if (step_name, pname) in from_command_line else folder
                 params[pname] = _resolve_path(value, base)
         for switch, on in (("overwrite", overwrite), ("strict", strict)):

@@ -55,6 +55,7 @@ def _add_param(parser: argparse.ArgumentParser, p: Param) -> None:
             "name-in-file": "NAME",
             "result-table-file": "PATH",
             "result-layer-file": "PATH",
+            "picture-file": "PATH.png",
             "second-dataset": "DATASET",
         }.get(p.kind)
         if p.kind == "choice":
@@ -190,6 +191,8 @@ def _run(argv: list[str]) -> int:
         _print_table(result)
     elif written != "standard output" and not values.get("quiet"):
         print(f"pairspread: wrote {len(result)} row(s) to {written}", file=sys.stderr)
+    if values.get("map") and not values.get("quiet"):
+        print(f"pairspread: drew the map in {values['map']}", file=sys.stderr)
     return 0
 
 

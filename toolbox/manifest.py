@@ -42,6 +42,7 @@ KIND_MEANINGS = {
     "result-table-file": "where a result table goes: a file path (its suffix picks the format) or -",
     "result-layer-file": "where a copy of the layer with added columns goes: a file path",
     "name-in-file": "the name a result gets inside a GeoPackage",
+    "picture-file": "where a picture of the result goes: a .png file path",
     "flag": "on or off",
 }
 KINDS = tuple(KIND_MEANINGS)
@@ -273,6 +274,10 @@ def _convert(script: Script, p: Param, value: Any) -> Any:
     if kind in ("result-table-file", "result-layer-file"):
         if not isinstance(value, (str, os.PathLike)) or not str(value):
             raise _fail(script, p, "a file path or -", value)
+        return os.fspath(value)
+    if kind == "picture-file":
+        if not isinstance(value, (str, os.PathLike)) or not str(value):
+            raise _fail(script, p, "a .png file path", value)
         return os.fspath(value)
     if kind in ("number", "integer"):
         try:

@@ -155,9 +155,23 @@ def _run_script(
         raise ParameterError(
             f"{spell('output_format')} applies to {spell('output', '-')} (standard output) only."
         )
+    if values.get("output_on") == "regions" and values.get("group_shape", "none") != "none":
+        raise ParameterError(
+            f"{spell('group_shape')} and {spell('output_on', 'regions')} both give the rows a geometry; "
+            "choose one."
+        )
+    picture = values.get("map")
+    if picture is not None:
+        from . import maps
+
+        maps.check_map(picture, overwrite=bool(values.get("overwrite")), wide=bool(values.get("wide")))
     values = _read_piped(script, values)
     function = script.load()
     call = {k: v for k, v in values.items() if k not in runner_params}
+    # a map of group-spread draws the groups' hulls even when the output is a plain table
+    borrowed = picture is not None and call.get("group_shape") == "none" and maps.draws_areas(script.name)
+    if borrowed and values.get("output_on") != "regions":
+        call["group_shape"] = "hull"
     # phases on stderr when it is a terminal: reading until the kernels first report, then
     # computing, then writing (see toolbox/progress.py)
     line = ProgressLine(script.name, not values.get("quiet", True) and sys.stderr.isatty())
@@ -169,6 +183,12 @@ def _run_script(
             result = function(**call)
         interrupts.check()
         notes = _check_notes(script, result, bool(values.get("strict")))
+        drawn = result
+        if borrowed and hasattr(result, "geometry"):  # the shapes were for the map only
+            import pandas as pd
+
+            result = pd.DataFrame(result.drop(columns=result.geometry.name))
+            result.attrs.update(drawn.attrs)
         written = None
         if output is not None:
             if output == "-":  # the table goes to the terminal too: clear the line first
@@ -179,6 +199,15 @@ def _run_script(
             written = layers.write_output(result, output, record=record, sidecar=sidecar, **where)
         elif isinstance(result, layers.FrameBatches):  # no file to stream into: the whole result
             result = result.frame()
+        if picture is not None:
+            line.phase("writing")
+            if isinstance(drawn, layers.FrameBatches):  # a layer written in batches: drawn whole
+                drawn = drawn.frame()
+            names = [*(values.get("group_by") or ()), *([values["region_id"]] if values.get("region_id") else [])]
+            shapes = "regions" if values.get("output_on") == "regions" else call.get("group_shape", "hull")
+            maps.draw_map(
+                script.name, drawn, picture, overwrite=bool(values.get("overwrite")), labels=names, shapes=shapes
+            )
     finally:
         line.close()
     return result, written

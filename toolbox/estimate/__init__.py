@@ -9,6 +9,7 @@ in :mod:`toolbox.estimate.interval`, the local projections of geodesic groups in
 """
 
 from .arrays import cross_pair_sums, exact_pair_sum, grouped_pair_sums, grouped_point_sums, pair_distance_sum
+from .centres import group_centres
 from .contrast import EnergyTest, energy_test
 from .distance import DISTANCES, DistanceSetup, distance_setup
 from .frames import MAX_RADIUS_DEG, LocalFrame, local_frame
@@ -21,6 +22,7 @@ from .interval import (
     projection_error,
     projection_factors,
 )
+from .nearest import NearestMeans, nearest_means
 from .pieces import feature_sums
 from .points import Points
 from .results import CrossPairSums, GroupPairSums, PairSum, PointSums, raise_for_notes
@@ -39,6 +41,9 @@ __all__ = [
     "cross_sums",
     "check_cross_groups",
     "feature_sums",
+    "group_centres",
+    "nearest_means",
+    "NearestMeans",
     "energy_test",
     "EnergyTest",
     "GroupPairSums",

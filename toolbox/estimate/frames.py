@@ -18,7 +18,7 @@ import numpy as np
 from ..kernels import WGS84_A, WGS84_F, geod
 from .interval import distortion_error
 
-__all__ = ["MAX_RADIUS_DEG", "LocalFrame", "local_frame", "frame_from_centre"]
+__all__ = ["MAX_RADIUS_DEG", "LocalFrame", "local_frame", "frame_from_centre", "mean_direction"]
 
 #: farthest a group may reach from its centre (degrees of arc, measured as a share of the
 #: quarter meridian) and still use a local projection; below the convexity radius of the
@@ -68,6 +68,33 @@ def _unusable(reason, radius_m=math.nan, radius_deg=math.nan, lon0=math.nan, lat
     return LocalFrame(False, reason, lon0, lat0, radius_m, radius_deg, math.nan, math.nan, None, None)
 
 
+def mean_direction(lon, lat, weights=None) -> tuple[float, float]:
+    """Longitude and latitude of the (weighted) mean of the points' unit normals, normalised.
+
+    This is the centre of points on the ellipsoid: it needs no special case at the antimeridian
+    or the poles, unlike a mean of longitudes. NaN, NaN when the mean vanishes (points all
+    around the Earth, with no common centre).
+
+    Examples
+    --------
+    >>> lon0, lat0 = mean_direction([179.0, -179.0], [0.0, 0.0])  # across the antimeridian
+    >>> round(abs(lon0), 9), round(lat0, 9)
+    (180.0, 0.0)
+    >>> [round(v, 9) for v in mean_direction([0.0, 10.0], [0.0, 0.0], [1.0, 0.0])]
+    [0.0, 0.0]
+    """
+    lam, phi = np.radians(np.asarray(lon, dtype=np.float64)), np.radians(np.asarray(lat, dtype=np.float64))
+    w = np.ones(lam.size) if weights is None else np.asarray(weights, dtype=np.float64)
+    cos_phi = np.cos(phi)
+    total = w.sum()
+    if not total > 0:
+        return math.nan, math.nan
+    vx, vy, vz = (w * cos_phi * np.cos(lam)).sum() / total, (w * cos_phi * np.sin(lam)).sum() / total, (w * np.sin(phi)).sum() / total
+    if math.sqrt(vx * vx + vy * vy + vz * vz) < 1e-6:
+        return math.nan, math.nan
+    return math.degrees(math.atan2(vy, vx)), math.degrees(math.atan2(vz, math.hypot(vx, vy)))
+
+
 def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
     """AEQD projection centred on the points, with bounds of its scale over their region.
 
@@ -97,14 +124,9 @@ def local_frame(lon, lat, a: float = WGS84_A, f: float = WGS84_F) -> LocalFrame:
 
     lon = np.asarray(lon, dtype=np.float64)
     lat = np.asarray(lat, dtype=np.float64)
-    lam, phi = np.radians(lon), np.radians(lat)
-    cos_phi = np.cos(phi)
-    vx, vy, vz = (cos_phi * np.cos(lam)).mean(), (cos_phi * np.sin(lam)).mean(), np.sin(phi).mean()
-    norm = math.sqrt(vx * vx + vy * vy + vz * vz)
-    if norm < 1e-6:
+    lon0, lat0 = mean_direction(lon, lat)
+    if math.isnan(lon0):
         return _unusable("has points all around the Earth, with no common centre", radius_deg=180.0)
-    lat0 = math.degrees(math.atan2(vz, math.hypot(vx, vy)))
-    lon0 = math.degrees(math.atan2(vy, vx))
     try:
         proj = pyproj.Proj(proj="aeqd", lat_0=lat0, lon_0=lon0, a=a, f=f, units="m")
         x, y = proj(lon, lat)

@@ -689,6 +689,36 @@ def _write_batched(frame: FrameBatches, tmp, kind, renamed, layer_name, record, 
     )  # fmt: skip
 
 
+#: a Shapefile holds one kind of geometry: the first kind present in this order is kept
+_SHAPE_KINDS = (("polygon", ("Polygon", "MultiPolygon")), ("line", ("LineString", "MultiLineString")))
+
+
+def _one_geometry_kind(frame):
+    """``frame`` with the geometries a Shapefile cannot hold beside the others left empty.
+
+    Group hulls mix polygons with points and lines (groups of one or two points, or on one
+    line); a Shapefile holds one kind, so the others are written without geometry, with a
+    warning.
+    """
+    if not _is_frame(frame):
+        return frame
+    types = frame.geom_type
+    for word, kinds in _SHAPE_KINDS:
+        if types.isin(kinds).any():
+            others = types.notna() & ~types.isin(kinds)
+            if others.any():
+                warnings.warn(
+                    f"A Shapefile holds one kind of geometry: {int(others.sum())} feature(s) whose "
+                    f"shape is not a {word} are written without geometry; write a GeoPackage to keep them.",
+                    UserWarning,
+                    stacklevel=4,
+                )
+                frame = frame.copy()
+                frame.loc[others.to_numpy(), frame.geometry.name] = None
+            break
+    return frame
+
+
 def _write_once(
     frame, path: str, target: Path, kind: str, fields, layer_name: str, record: dict | None, sidecar: bool
 ) -> bool:
@@ -737,7 +767,7 @@ def _write_once(
             _warn_long_texts(frame, fields)
             if renamed and record is not None:  # the sidecar keeps the mapping
                 record = {**record, "shapefile_fields": renamed}
-            out = frame.rename(columns=renamed)
+            out = _one_geometry_kind(frame.rename(columns=renamed))
             pyogrio.write_dataframe(out, tmp, driver="ESRI Shapefile", encoding="UTF-8")
         _check_written(tmp, kind, rows, [str(f) for f in fields], layer_name, path)
         produced = [tmp] if kind != "shp" else [p for p in _shapefile_parts(tmp) if p.exists()]

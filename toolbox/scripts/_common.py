@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
 
 from .. import estimate, grouping, layers
@@ -256,3 +257,26 @@ def rows_onto_regions(result: pd.DataFrame, ids, join):
 def method_column(methods):
     """The ``method`` column from ``sums.method``: exact, projection, or null (no total)."""
     return pd.array(methods, dtype="string")
+
+
+def with_group_shape(table: pd.DataFrame, grouped: Grouped, shape: str, rows=None) -> pd.DataFrame:
+    """``table`` as a layer whose rows carry their group's shape (``--group-shape``).
+
+    ``rows`` holds the group code of each row (default: row i is group i). ``shape`` "none"
+    returns the table as it is; "hull" or "centre" a GeoDataFrame in the CRS the distances
+    were measured in.
+    """
+    if shape == "none":
+        return table
+    import geopandas
+
+    from ..layers.groupshapes import group_shapes
+
+    p = grouped.points
+    geodesic = p.distance.kind == "geodesic"
+    shapes = group_shapes(p.x, p.y, p.groups, p.n_groups, shape, estimate.group_centres(p), degrees=geodesic)
+    rows = np.arange(len(table)) if rows is None else np.asarray(rows)
+    crs = grouped.setup.crs if grouped.setup.crs is not None else grouped.layer.crs
+    layer = geopandas.GeoDataFrame(table, geometry=list(shapes[rows]), crs=crs)
+    layer.attrs.update(table.attrs)  # the notes of groups that could not be computed
+    return layer

@@ -9,13 +9,21 @@ from .. import estimate, tables
 from ..errors import InputError, ParameterError, spell
 from ..layers import stream
 from . import _large
-from ._common import Places, group_points, method_column, read_grouped, read_measured, rows_onto_regions
+from ._common import (
+    Places,
+    group_points,
+    method_column,
+    read_grouped,
+    read_measured,
+    rows_onto_regions,
+    with_group_shape,
+)
 
 
 def cross_spread(
     data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method, distance, crs,
     where, engine, as_points, fill_spacing, regions, regions_layer, region_id, outside_regions, output_on, wide,
-    batch_rows, dask_scheduler, progress=None,
+    batch_rows, dask_scheduler, nearest, group_shape, progress=None,
 ) -> pd.DataFrame:  # fmt: skip
     """Mean distance between groups: every pair of one layer's groups, or groups of two layers."""
     places = Places.of(locals())  # --as-points applies to both layers, --regions to the first
@@ -26,11 +34,23 @@ def cross_spread(
         )
     if to is None and (to_layer or to_group_by or to_weight):
         raise ParameterError(f"{spell('to_layer')}, {spell('to_group_by')} and {spell('to_weight')} need {spell('to')}.")
+    if nearest and (to_weight or method == "projection"):
+        raise ParameterError(
+            f"{spell('nearest')} measures exact distances to the nearest feature, whatever its weight; "
+            f"drop {spell('to_weight') if to_weight else spell('method', 'projection')}."
+        )
     large = dict(engine=engine, batch_rows=batch_rows, dask_scheduler=dask_scheduler)
     whole = places.read_whole(data, batch_rows, dask_scheduler) or (to is not None and places.read_whole(to, None, None))
     parts = None if whole else _large.large_parts(data, layer=layer, where=where, **large)
     to_parts = None if to is None or whole else _large.large_parts(to, layer=to_layer, where=None, **large)
+    first = sums = None
     if parts is not None or to_parts is not None:  # batch by batch, or on a cluster
+        if nearest or group_shape != "none":
+            asked = spell("nearest") if nearest else spell("group_shape")
+            raise ParameterError(
+                f"{asked} needs the layers in memory, but this input is read in batches; drop {asked} "
+                f"(or {spell('batch_rows')} / {spell('dask_scheduler')})."
+            )
         if parts is None:
             parts = stream.layer_parts(data, layer=layer, where=where, engine=engine)
         if to is not None and to_parts is None:
@@ -40,48 +60,66 @@ def cross_spread(
             tolerance=tolerance, method=method, distance=distance, crs=crs, batch_rows=batch_rows,
             dask_scheduler=dask_scheduler,
         )  # fmt: skip
-        sums, keys, to_keys, units, made, join = read.sums, read.keys, read.to_keys, read.units, None, None
+        sums, keys, to_keys, units, made = read.sums, read.keys, read.to_keys, read.units, None
+        counts = sums.n_points
     else:
-        sums, keys, to_keys, units, made, join = _in_memory(
+        first, points, to_keys = _in_memory(
             data, layer=layer, group_by=group_by, weight=weight, to=to, to_layer=to_layer,
-            to_group_by=to_group_by, to_weight=to_weight, tolerance=tolerance, method=method,
-            distance=distance, crs=crs, where=where, engine=engine, places=places, progress=progress,
+            to_group_by=to_group_by, to_weight=to_weight, distance=distance, crs=crs, where=where,
+            engine=engine, places=places,
         )  # fmt: skip
+        keys, units, made = first.groups.keys, first.setup.units, first.made
+        counts = np.bincount(points.groups, minlength=points.n_groups)
+        if not nearest:
+            sums = estimate.cross_sums(points, tolerance=tolerance, method=method, progress=progress)
     n_from = len(keys)
     rows = np.arange(n_from)
-    cols = np.arange(n_from, sums.n_points.size) if to is not None else rows
+    cols = np.arange(n_from, counts.size) if to is not None else rows
     a, b = (v.ravel() for v in np.meshgrid(rows, cols, indexing="ij"))
     table = pd.DataFrame(
         {
             "from_group": tables.group_labels(keys)[a],
             "to_group": tables.group_labels(to_keys)[b - (n_from if to is not None else 0)],
-            "n_from": sums.n_points[a],
-            "n_to": sums.n_points[b],
-            "total_dist": sums.total[a, b],
-            "total_lo": sums.lower[a, b],
-            "total_hi": sums.upper[a, b],
-            "mean_dist": sums.mean[a, b],
-            "rel_bound": sums.rel_bound[a, b],
-            "method": method_column(sums.method[a, b]),
-            "directions": sums.directions[a, b],
-            "units": units,
+            "n_from": counts[a],
+            "n_to": counts[b],
         }
     )
-    labels = [*tables.group_labels(keys), *(tables.group_labels(to_keys) if to is not None else [])]
-    tables.add_notes(table, sums.note[a, b], tables.noted_pairs(labels, sums.note))
+    if nearest:  # exact and never refused: a pair without a nearest point is left empty
+        near = estimate.nearest_means(points, rows, cols)
+        table = table.assign(nearest_avg=near.mean.ravel(), nearest_max=near.largest.ravel(), units=units)
+    else:
+        table = table.assign(**_sum_columns(sums, a, b), units=units)
+        labels = [*tables.group_labels(keys), *(tables.group_labels(to_keys) if to is not None else [])]
+        tables.add_notes(table, sums.note[a, b], tables.noted_pairs(labels, sums.note))
     if made is not None:
         table["as_points"] = made
+    values = "nearest_avg" if nearest else "mean_dist"
     if places.output_on == "regions":  # each row goes onto its from-group's region
         ids = keys[region_id].to_numpy()
-        return rows_onto_regions(tables.wide_matrix(table) if wide else table, ids if wide else ids[a], join)
-    if not wide:
-        return table
-    return tables.wide_matrix(table)
+        return rows_onto_regions(tables.wide_matrix(table, values) if wide else table, ids if wide else ids[a], first.join)
+    if first is None:
+        return tables.wide_matrix(table) if wide else table
+    if wide:
+        return with_group_shape(tables.wide_matrix(table, values), first, group_shape)
+    return with_group_shape(table, first, group_shape, rows=a)
 
 
-def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, tolerance, method,
-               distance, crs, where, engine, places, progress):  # fmt: skip
-    """Both layers read whole: the sums, the keys of the rows and of the columns, units, how made."""
+def _sum_columns(sums, a, b) -> dict:
+    """The all-pairs columns of the rows (a, b): sums, interval, mean and how they were made."""
+    return {
+        "total_dist": sums.total[a, b],
+        "total_lo": sums.lower[a, b],
+        "total_hi": sums.upper[a, b],
+        "mean_dist": sums.mean[a, b],
+        "rel_bound": sums.rel_bound[a, b],
+        "method": method_column(sums.method[a, b]),
+        "directions": sums.directions[a, b],
+    }
+
+
+def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_weight, distance, crs, where,
+               engine, places):  # fmt: skip
+    """Both layers read whole: the first layer's groups, both layers' points and the column keys."""
     first = read_grouped(
         data, layer=layer, group_by=group_by, weight=weight, where=where, engine=engine,
         distance=distance, crs=crs, script="cross-spread", places=places,
@@ -100,5 +138,4 @@ def _in_memory(data, *, layer, group_by, weight, to, to_layer, to_group_by, to_w
         # into the first layer's frame; a silent change of CRS is reported unless --crs asked for it
         second = group_points(other, to_group_by, to_weight, first.setup, note=crs is None)
         points = points.join(second.points)
-    sums = estimate.cross_sums(points, tolerance=tolerance, method=method, progress=progress)
-    return sums, first.groups.keys, second.groups.keys, first.setup.units, first.made, first.join
+    return first, points, second.groups.keys
