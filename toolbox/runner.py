@@ -169,8 +169,13 @@ def _run_script(
     function = script.load()
     call = {k: v for k, v in values.items() if k not in runner_params}
     # a map of group-spread draws the groups' hulls even when the output is a plain table
-    borrowed = picture is not None and call.get("group_shape") == "none" and maps.draws_areas(script.name)
-    if borrowed and values.get("output_on") != "regions":
+    borrowed = (
+        picture is not None
+        and call.get("group_shape") == "none"
+        and values.get("output_on") != "regions"  # the regions are the shapes then
+        and maps.draws_areas(script.name)
+    )
+    if borrowed:
         call["group_shape"] = "hull"
     # phases on stderr when it is a terminal: reading until the kernels first report, then
     # computing, then writing (see toolbox/progress.py)
