@@ -228,3 +228,20 @@ def test_cross_spread_rows_carry_their_from_group_shape(homes_gpkg, homes):
         homes_gpkg.path, **homes_gpkg.kwargs, group_by="zone", group_shape="centre", wide=True
     )
     assert isinstance(wide, gpd.GeoDataFrame) and (wide.geom_type == "Point").all()
+
+
+def test_a_chain_checks_every_map_before_the_first_step_runs(run_main, tmp_path, homes_gpkg):
+    chain = tmp_path / "chain.toml"
+    chain.write_text(
+        "pairspread_chain = 1\n"
+        "[steps.first]\n"
+        'script = "group-spread"\n'
+        f'params = {{ data = "{homes_gpkg.path.name}", layer = "homes", group_by = "zone", output = "first.csv" }}\n'
+        "[steps.second]\n"
+        'script = "cross-spread"\n'
+        f'params = {{ data = "{homes_gpkg.path.name}", layer = "homes", group_by = "zone", map = "nowhere/m.png" }}\n'
+    )
+    code, _, err = run_main("chain", chain)
+    lines = err.strip().splitlines()
+    assert code != 0 and len(lines) == 1 and "step 'second'" in lines[0] and "does not exist" in lines[0], err
+    assert not (tmp_path / "first.csv").exists()

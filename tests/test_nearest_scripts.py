@@ -134,3 +134,11 @@ def test_nearest_refuses_what_it_cannot_take(run_main, homes_gpkg, extra, messag
 def test_nearest_refusal_speaks_python(homes_gpkg):
     with pytest.raises(ParameterError, match=r"'nearest' .* drop method='projection'"):
         toolbox.cross_spread(homes_gpkg.path, **homes_gpkg.kwargs, group_by="zone", nearest=True, method="projection")
+
+
+def test_nearest_and_shapes_need_the_layers_in_memory(run_main, homes_gpkg):
+    for extra in (["--nearest"], ["--group-shape", "hull"]):
+        code, _, err = run_main("cross-spread", *homes_gpkg.args, "--group-by", "zone", "--batch-rows", "100", *extra)
+        lines = err.strip().splitlines()
+        assert code != 0 and len(lines) == 1 and "needs the layers in memory" in lines[0], err
+        assert f"drop {extra[0]}" in lines[0]

@@ -383,6 +383,14 @@ def _check_steps(ordered: list[Step], steps: dict[str, Step], place: _Place) -> 
                     step.name, f"{p.name}: input {value!r} does not exist; check the path.", kind=InputError
                 )
         _check_names(step, checked, {path for path, _ in targets}, place)
+        picture = checked.get("map")
+        if picture is not None:  # refused before any step runs, as an unwritable output is
+            from . import maps
+
+            try:
+                maps.check_map(picture, overwrite=bool(checked.get("overwrite")), wide=bool(checked.get("wide")))
+            except PairspreadError as exc:
+                raise place.error(step.name, str(exc), kind=type(exc)) from exc
         output = step.output
         if output is None:
             continue

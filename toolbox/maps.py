@@ -166,7 +166,7 @@ def _areas(plt, frame, title: str, units: str, labels=()):
             column=values[~empty].to_numpy(),
             cmap=_colormap(),
             legend=True,
-            legend_kwds={"label": f"mean distance between two points of the group ({units})", "shrink": 0.7},
+            legend_kwds={"label": f"mean straight-line distance between two of its points ({units})", "shrink": 0.7},
             **{k: (v[~empty] if k == "markersize" else v) for k, v in style.items()},
         )
     from matplotlib import patheffects
@@ -183,7 +183,7 @@ def _areas(plt, frame, title: str, units: str, labels=()):
         from matplotlib.patches import Patch
 
         ax.legend(
-            handles=[Patch(facecolor=_EMPTY, hatch="///", edgecolor="white", label="no points")],
+            handles=[Patch(facecolor=_EMPTY, hatch="///", edgecolor="white", label="no pair of points")],
             loc="upper right",
             frameon=False,
         )
@@ -349,7 +349,7 @@ def _layer_units(frame) -> str:
 _SHAPE_WORDS = {
     "hull": "each area is the convex hull of the group's points",
     "centre": "each dot is the group's weighted mean centre",
-    "regions": "each area is a region; hatched: no points in it",
+    "regions": "each area is a region, measured over the points inside it",
 }
 
 
@@ -391,7 +391,10 @@ def draw_map(
                 f"{spell('map')} needs group shapes: use {spell('group_shape', 'hull')} or the region layer."
             )
         what = "each " + " / ".join(labels) if labels else "each group"
-        title = f"Mean distance between two points of {what}\n({_SHAPE_WORDS.get(shapes, _SHAPE_WORDS['hull'])})"
+        words = _SHAPE_WORDS.get(shapes, _SHAPE_WORDS["hull"])
+        if pd.to_numeric(result["mean_dist"], errors="coerce").isna().any():
+            words += "; hatched grey: no pair of points to measure"
+        title = f"Mean distance between two points of {what}\n({words})"
         fig = _areas(plt, result.copy(), title, units or _layer_units(result), labels)
     try:
         return _save(fig, path, overwrite)
