@@ -26,6 +26,11 @@ demo: $(COMPILED)
 	    --output demo_output/spread_east.csv --overwrite
 	@echo "The tables went to demo_output/spread.gpkg (table 'group_spread') and demo_output/spread_east.csv:"
 	@$(BIN)/python -c "import pyogrio; t = pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread'); print(t.to_string(index=False, na_rep=''))"
+	$(BIN)/pairspread group-spread sample_layers/quenwick.gpkg --layer households --weight residents \
+	    --regions sample_layers/quenwick.gpkg --regions-layer wards --region-id ward --output-on regions \
+	    --output demo_output/wards_spread.gpkg --map demo_output/wards_map.png --overwrite
+	@echo "The regional summary went onto the ward polygons in demo_output/wards_spread.gpkg (layer 'group_spread'),"
+	@echo "and its map to demo_output/wards_map.png (the picture in README.md, docs/images/demo_map.png)."
 
 test: $(COMPILED) lint
 	$(BIN)/python -m pytest -q -n 2 toolbox tests
