@@ -245,3 +245,20 @@ def test_a_chain_checks_every_map_before_the_first_step_runs(run_main, tmp_path,
     lines = err.strip().splitlines()
     assert code != 0 and len(lines) == 1 and "step 'second'" in lines[0] and "does not exist" in lines[0], err
     assert not (tmp_path / "first.csv").exists()
+
+
+def test_cross_spread_on_the_regions_draws_its_matrix(tmp_path, homes):
+    # every home in one of two invented square regions; the rows are written onto the regions
+    x0, y0 = homes.total_bounds[:2]
+    x1, y1 = homes.total_bounds[2:]
+    mid = (x0 + x1) / 2
+    regions = gpd.GeoDataFrame(
+        {"area": ["west", "east"]},
+        geometry=[shapely.box(x0 - 1, y0 - 1, mid, y1 + 1), shapely.box(mid, y0 - 1, x1 + 1, y1 + 1)],
+        crs=homes.crs,
+    )
+    result = toolbox.cross_spread(
+        homes, regions=regions, region_id="area", output_on="regions", map=str(tmp_path / "m.png")
+    )
+    assert "from_group" not in result.columns and "area" in result.columns
+    _assert_picture(tmp_path / "m.png")

@@ -374,6 +374,9 @@ def draw_map(
         What the shapes of an area map are, for its title.
     """
     plt = _pyplot()
+    if script == "cross-spread" and "from_group" not in result:  # rows put onto the regions
+        source = next((c for c in reversed(labels) if c in result), None)
+        result = result.assign(from_group=result[source]) if source is not None else result
     units = str(result["units"].dropna().iloc[0]) if "units" in result and result["units"].notna().any() else ""
     if script == "point-remoteness":
         fig = _remoteness(plt, result, units or _layer_units(result))
