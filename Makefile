@@ -25,7 +25,7 @@ demo: $(COMPILED)
 	$(BIN)/pairspread group-spread sample_layers/households_east.shp --group-by district,tenure \
 	    --output demo_output/spread_east.csv --overwrite
 	@echo "The tables went to demo_output/spread.gpkg (table 'group_spread') and demo_output/spread_east.csv:"
-	@$(BIN)/python -c "import pyogrio; t = pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread'); print(t.to_string(index=False, na_rep=''))"
+	@$(BIN)/python -c "import pyogrio; t = pyogrio.read_dataframe('demo_output/spread.gpkg', layer='group_spread'); t['note'] = t['note'].fillna(''); print(t.to_string(index=False, na_rep=''))"
 	$(BIN)/pairspread group-spread sample_layers/quenwick.gpkg --layer households --weight residents \
 	    --regions sample_layers/quenwick.gpkg --regions-layer wards --region-id ward --output-on regions \
 	    --output demo_output/wards_spread.gpkg --map demo_output/wards_map.png --overwrite
