@@ -411,3 +411,16 @@ def ctrl_c_handled():
     previous = signal.signal(signal.SIGINT, signal.default_int_handler)
     yield
     signal.signal(signal.SIGINT, previous)
+
+
+@pytest.fixture
+def run_main(capsys):
+    """The command line in-process: returns (exit code, stdout, stderr)."""
+    from toolbox.cli import main
+
+    def run(*args):
+        code = main([str(a) for a in args])
+        captured = capsys.readouterr()
+        return code, captured.out, captured.err
+
+    return run

@@ -20,20 +20,10 @@ import pytest
 
 import toolbox
 from toolbox.chain import chain_schema, load_chain, plan_text
-from toolbox.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "docs" / "examples"
 
-
-@pytest.fixture
-def run_main(capsys):
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
 
 
 FOUR_STEPS = """\

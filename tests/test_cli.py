@@ -87,17 +87,6 @@ def check_bounded(table, reference, by_key, group_by, tolerance):
         assert row["directions"] == (directions_for(tolerance) if row["method"] == "projection" else 0), key
 
 
-@pytest.fixture
-def run_main(capsys):
-    """The command line in-process: returns (exit code, stdout, stderr)."""
-
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
-
 
 # --------------------------------------------------------------------------------------------
 # subprocess runs: both entry points, every input format

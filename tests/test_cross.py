@@ -28,7 +28,6 @@ from scipy import integrate
 from scipy.spatial.distance import cdist, pdist
 
 import toolbox
-from toolbox.cli import main
 
 #: the long table's columns, exactly, in this order (issue 3)
 LONG_COLUMNS = ["from_group", "to_group", "n_from", "n_to", "total_dist", "total_lo", "total_hi", "mean_dist",
@@ -577,15 +576,6 @@ def test_two_layer_mode_is_symmetric(homes, homes_gpkg, tmp_path):
 # --------------------------------------------------------------------------------------------
 # errors and empty results (in-process command line)
 
-
-@pytest.fixture
-def run_main(capsys):
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
 
 
 def _one_line_error(code: int, err: str) -> str:

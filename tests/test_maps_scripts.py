@@ -20,21 +20,8 @@ import pytest
 import shapely
 
 import toolbox
-from toolbox.cli import main
 from toolbox.errors import OutputError, ParameterError
 from toolbox.maps import _PALETTE
-
-
-@pytest.fixture
-def run_main(capsys):
-    """The command line in-process: returns (exit code, stdout, stderr)."""
-
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
 
 
 def _png(path):

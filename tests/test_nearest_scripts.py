@@ -17,18 +17,7 @@ from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
 import toolbox
-from toolbox.cli import main
 from toolbox.errors import ParameterError
-
-
-@pytest.fixture
-def run_main(capsys):
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
 
 
 def _xy(frame):

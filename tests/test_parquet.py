@@ -19,19 +19,8 @@ import pytest
 import shapely
 
 from toolbox import layers
-from toolbox.cli import main
 from toolbox.errors import GeometryError, InputError, ParameterError
 from toolbox.layers import parquet
-
-
-@pytest.fixture
-def run_main(capsys):
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
 
 
 def _partitioned(homes: gpd.GeoDataFrame, folder) -> None:

@@ -26,7 +26,6 @@ from scipy import integrate
 from scipy.spatial.distance import cdist, pdist
 
 import toolbox
-from toolbox.cli import main
 
 NEW_FIELDS = ["remote_avg", "remote_lo", "remote_hi", "remote_idx", "group_n", "note"]  # issues 3, 10
 HOME_FIELDS = ["zone", "tenure", "pop", "label"]  # the fields of conftest.make_homes
@@ -386,15 +385,6 @@ def test_cli_into_existing_geopackage(cli, tmp_path, homes_gpkg, homes, homes_re
 # --------------------------------------------------------------------------------------------
 # error cases and edge cases, through the command line in-process (same code, no start-up)
 
-
-@pytest.fixture
-def run_main(capsys):
-    def run(*args):
-        code = main([str(a) for a in args])
-        captured = capsys.readouterr()
-        return code, captured.out, captured.err
-
-    return run
 
 
 def _one_line_error(code: int, err: str) -> str:
