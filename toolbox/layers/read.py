@@ -7,6 +7,7 @@ import os
 import sys
 import warnings
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -304,8 +305,63 @@ def _points_from_wkb(attributes, column, crs, label) -> PointLayer:
     return _points_from_geometry(attributes, geometry, crs, label)
 
 
+#: features per task of :func:`_plain_points`: small enough that a task's GEOS objects are still
+#: in cache when the next accessor walks them, large enough that a call costs nothing in comparison
+_PLAIN_BLOCK = 1 << 16
+
+
+def _worker_threads() -> int:
+    """Threads for reading coordinates: the compiled kernels' setting (``threads``), else the cores."""
+    numba = sys.modules.get("numba")  # loaded with the kernels; its setting follows ``threads``
+    return numba.get_num_threads() if numba is not None else os.cpu_count() or 1
+
+
+def _plain_points(geometry: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Coordinates when every feature is one 2-D point with finite coordinates; else None.
+
+    shapely's ``get_x`` and ``get_y`` give NaN for anything but a non-empty point (a missing
+    geometry, a MultiPoint, a line, ...), so finite values prove that every feature is one
+    point: no type pass, no empty pass, no index of features. These functions and ``has_z``
+    let go of the GIL (``get_coordinates`` does not), so blocks of the array are read in
+    threads. Anything else (nulls, empties, other types, Z, NaN) returns None, and the caller
+    takes the general path with its messages.
+    """
+    n = geometry.size
+    x, y, z = np.empty(n), np.empty(n), np.empty(n, dtype=bool)
+    failed: list[int] = []  # once a block is not plain, the others stop early
+
+    def block(a: int) -> bool:
+        if failed:
+            return False
+        b = min(n, a + _PLAIN_BLOCK)
+        part = geometry[a:b]
+        try:
+            shapely.get_x(part, out=x[a:b])
+            shapely.get_y(part, out=y[a:b])
+        except shapely.errors.GEOSException:  # POINT EMPTY has no x
+            failed.append(a)
+            return False
+        shapely.has_z(part, out=z[a:b])
+        if np.isfinite(x[a:b]).all() and np.isfinite(y[a:b]).all() and not z[a:b].any():
+            return True
+        failed.append(a)
+        return False
+
+    starts = range(0, n, _PLAIN_BLOCK)
+    threads = min(_worker_threads(), len(starts))
+    if threads <= 1:
+        plain = all(block(a) for a in starts)
+    else:
+        with ThreadPoolExecutor(threads) as pool:
+            plain = all(list(pool.map(block, starts)))
+    return (x, y) if plain else None
+
+
 def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
     geometry = np.asarray(geometry, dtype=object)
+    plain = _plain_points(geometry) if geometry.size else None
+    if plain is not None:
+        return _finish(attributes, *plain, np.arange(geometry.size, dtype=np.int64), crs, label, checked=True)
     types = shapely.get_type_id(geometry)
     missing = (types < 0) | shapely.is_empty(geometry)
     if missing.any():
@@ -335,9 +391,10 @@ def _points_from_geometry(attributes, geometry, crs, label) -> PointLayer:
     return _finish(attributes, coords[:, 0].copy(), coords[:, 1].copy(), feature, crs, label)
 
 
-def _finish(attributes, x, y, feature, crs, label) -> PointLayer:
-    bad = ~(np.isfinite(x) & np.isfinite(y))
-    if bad.any():
+def _finish(attributes, x, y, feature, crs, label, *, checked: bool = False) -> PointLayer:
+    """The layer of points ``x``, ``y``; ``checked`` says their coordinates are known to be finite."""
+    bad = None if checked else ~(np.isfinite(x) & np.isfinite(y))
+    if bad is not None and bad.any():
         rows = np.unique(feature[bad])
         raise GeometryError(
             f"{rows.size} feature(s) of {label} have NaN or infinite coordinates "
