@@ -13,7 +13,10 @@ so their pairs are summed exactly. Bucket index and sums use the same float proj
 index is a monotone function of it (each of the three pieces is linear and clamped to its own
 buckets), so the ordering is exact.
 
-One (group, direction) pair is one task; tasks run in parallel threads. This module needs
+One (group, direction) pair is one task. Consecutive tasks (a group's directions, then the
+next group's) form runs of about the same work; runs go to parallel threads one at a time, and
+the tasks of a run share one scratch accumulator, which each task leaves empty for the next, so
+a thousand small groups cost no more bookkeeping than their points. This module needs
 numba; without it the kernels fall back to sorting rows with numpy (exact along each
 direction, so the results differ only within the same guaranteed bounds).
 """
@@ -27,6 +30,10 @@ __all__ = ["bucketed_group_sums"]
 
 #: most buckets per group and direction (crowded ones are split again, see _resolve)
 MAX_BUCKETS = 1 << 16
+#: point-directions per run of tasks sharing one scratch accumulator (a few hundred µs of work)
+RUN_POINTS = 1 << 16
+#: heaviest buckets picked one by one before a task sorts the rest by their uncertainty
+_PICKS = 16
 
 
 @njit(cache=True, nogil=True)
@@ -61,9 +68,35 @@ def _sorted_pair_sum(p, w):
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _bin(p, radius, core, q, mid, s_tail, s_core, buckets):
-    """Bucket of projected value p: q coarse buckets per tail beyond ±core, mid dense ones
-    between; each piece clamped to its own buckets, so the index never decreases as p grows."""
+def _bucket_count(n):
+    """Buckets of a group of n points: about two points per bucket, 16 to MAX_BUCKETS."""
+    buckets = 16
+    while 2 * buckets < n and buckets < MAX_BUCKETS:
+        buckets *= 2
+    return buckets
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _frame(n, radius, core):
+    """How a group of n points is bucketed: (buckets, radius, core, q, mid, tail and core scales).
+
+    q coarse buckets per tail beyond ±core, mid dense ones between; tails only when they are
+    wide, since a narrow one would scale its index by a huge factor.
+    """
+    buckets = _bucket_count(n)
+    q = buckets // 8 if core < 0.5 * radius else 0  # buckets of each tail
+    core = core if q > 0 else radius
+    mid = buckets - 2 * q
+    s_tail = q / (radius - core) if q > 0 else 0.0
+    s_core = mid / (2.0 * core) if core > 0.0 else 0.0
+    return buckets, radius, core, q, mid, s_tail, s_core
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _bin(p, frame):
+    """Bucket of projected value p; each piece of the frame is clamped to its own buckets, so
+    the index never decreases as p grows."""
+    buckets, radius, core, q, mid, s_tail, s_core = frame
     if q > 0 and p < -core:
         return min(max(int((p + radius) * s_tail), 0), q - 1)
     if q > 0 and p > core:
@@ -72,99 +105,143 @@ def _bin(p, radius, core, q, mid, s_tail, s_core, buckets):
 
 
 @njit(cache=True, nogil=True)
-def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget):
-    """(exact part, remaining uncertainty) of one group's projected pair sum on one direction."""
-    if n < 2 or radius <= 0.0:
-        return 0.0, 0.0, 0.0
-    buckets = 16
-    while 2 * buckets < n and buckets < MAX_BUCKETS:  # about two points per bucket, at most 64 Ki
-        buckets *= 2
-    # tails only when they are wide: a narrow one would scale its index by a huge factor
-    q = buckets // 8 if core < 0.5 * radius else 0  # buckets of each tail
-    core = core if q > 0 else radius
-    mid = buckets - 2 * q
-    s_tail = q / (radius - core) if q > 0 else 0.0
-    s_core = mid / (2.0 * core) if core > 0.0 else 0.0
-    # one row per bucket (weight, weighted position, squared weights, count, min, max): a point
-    # touches one cache line, not six arrays
-    acc = np.zeros((buckets, 6))
+def _clear(acc, buckets):
+    """Put the first ``buckets`` rows of a scratch accumulator in their empty state."""
     for b in range(buckets):
+        acc[b, 0] = 0.0
+        acc[b, 1] = 0.0
+        acc[b, 2] = 0.0
+        acc[b, 3] = 0.0
         acc[b, 4] = np.inf
         acc[b, 5] = -np.inf
+
+
+@njit(cache=True, nogil=True)
+def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, acc):
+    """(exact part, remaining uncertainty, longest addition chain) of one group's projected
+    pair sum on one direction.
+
+    ``acc`` is the thread's scratch, at least as many rows as this task has buckets, all empty
+    (see :func:`_clear`); they are left empty again, so the next task reuses them as they are.
+    """
+    if n < 2 or radius <= 0.0:
+        return 0.0, 0.0, 0.0
+    frame = _frame(n, radius, core)
+    buckets = frame[0]
+    # one row per bucket (weight, weighted position, pair weight, count, min, max): a point
+    # touches one cache line, not six arrays
     for i in range(start, start + n):
         p = x[i] * c + y[i] * s
-        b = _bin(p, radius, core, q, mid, s_tail, s_core, buckets)
+        b = _bin(p, frame)
         wi = w[i] if weighted else 1.0
-        row = acc[b]
-        # column 2: the first point's weight, then the product of the first two weights
-        if row[3] == 0.0:
-            row[2] = wi
-        elif row[3] == 1.0:
-            row[2] *= wi
-        row[0] += wi
-        row[1] += wi * p
-        row[3] += 1.0
-        row[4] = min(row[4], p)
-        row[5] = max(row[5], p)
-    wb, sb, first_two = acc[:, 0], acc[:, 1], acc[:, 2]
-    count, lo, hi = acc[:, 3], acc[:, 4], acc[:, 5]
+        # column 2: the first point's weight, then the product of the first two weights. With
+        # about two points per bucket a branch on the count mispredicts half the time, so this
+        # is arithmetic: every product below is by 0 or 1 (exact) but for the one by wi
+        k = acc[b, 3]
+        first, second = np.float64(k == 0.0), np.float64(k == 1.0)
+        acc[b, 2] = first * wi + (1.0 - first) * acc[b, 2] * (second * wi + (1.0 - second))
+        acc[b, 0] += wi
+        acc[b, 1] += wi * p
+        acc[b, 3] = k + 1.0
+        acc[b, 4] = min(acc[b, 4], p)
+        acc[b, 5] = max(acc[b, 5], p)
+    # one pass over the buckets: pairs in different buckets, pairs of two-point buckets, and
+    # the bound of the crowded ones (their pair weight is at most W_b²/2, without cancellation)
     exact = 0.0
     acc_w = 0.0
     acc_s = 0.0
+    uncertain = 0.0
+    crowded = 0.0  # points in buckets of three or more
+    most = 0.0  # most points in one bucket
+    for b in range(buckets):
+        # arithmetic rather than branches, as above: an empty bucket adds exact zeros (its
+        # width, inf below -inf, is clamped to 0), and a factor 0 or 1 picks each case
+        k = acc[b, 3]
+        wb, sb = acc[b, 0], acc[b, 1]
+        exact += sb * acc_w - wb * acc_s
+        acc_w += wb
+        acc_s += sb
+        width = max(acc[b, 5] - acc[b, 4], 0.0)
+        pair, many = np.float64(k == 2.0), np.float64(k > 2.0)
+        exact += (width * acc[b, 2]) * pair  # its one pair is exactly the width apart
+        uncertain += (width * 0.5 * wb * wb) * many
+        crowded += k * many
+        most = max(most, k)
+    # longest chain of additions behind any sum: a bucket's points, then the buckets twice
+    chain = 2.0 * buckets + 8.0 + most
+    cheap = 4 * crowded <= n  # few collisions: resolving them all costs little
+    if uncertain > 0.0 and (cheap or uncertain > budget * exact):
+        # resolve buckets exactly, heaviest first, until the rest fits the budget (all, if cheap)
+        chosen = _choose(acc, buckets, exact, uncertain, budget, cheap)
+        exact, uncertain = _resolve_chosen(x, y, w, weighted, start, n, c, s, frame, acc, chosen, exact)
+    _clear(acc, buckets)
+    return exact, max(uncertain, 0.0), chain
+
+
+@njit(cache=True, nogil=True)
+def _choose(acc, buckets, exact, uncertain, budget, cheap):
+    """Crowded buckets to resolve: all if ``cheap``, else the heaviest until the rest fits."""
     spread = np.zeros(buckets)
     for b in range(buckets):
-        if count[b] == 0:
-            continue
-        exact += sb[b] * acc_w - wb[b] * acc_s
-        acc_w += wb[b]
-        acc_s += sb[b]
-        if count[b] == 2:  # its one pair is exactly the bucket's spread apart
-            exact += (hi[b] - lo[b]) * first_two[b]
-        elif count[b] > 2:  # its pair weight is at most W_b²/2 (a bound without cancellation)
-            spread[b] = (hi[b] - lo[b]) * 0.5 * wb[b] * wb[b]
-    uncertain = spread.sum()
-    crowded = 0  # points in buckets of three or more
-    for b in range(buckets):
-        if count[b] > 2:
-            crowded += int(count[b])
-    cheap = 4 * crowded <= n  # few collisions: resolving them all costs little
-    # longest chain of additions behind any sum: a bucket's points, then the buckets twice
-    chain = 2.0 * buckets + 8.0
-    for b in range(buckets):
-        chain = max(chain, 2.0 * buckets + 8.0 + count[b])
-    if uncertain == 0.0 or (not cheap and uncertain <= budget * exact):
-        return exact, uncertain, chain
-    # resolve buckets exactly, heaviest first, until the rest fits the budget (all, if cheap)
+        if acc[b, 3] > 2.0:
+            spread[b] = (acc[b, 5] - acc[b, 4]) * 0.5 * acc[b, 0] * acc[b, 0]
     if cheap:
-        chosen = spread > 0.0
-        uncertain = 0.0
-    else:
-        chosen = np.zeros(buckets, dtype=np.bool_)
+        return spread > 0.0
+    # a few picks of the largest usually suffice: cheaper than sorting every bucket
+    chosen = np.zeros(buckets, dtype=np.bool_)
+    picks = 0
+    while picks < _PICKS and uncertain > budget * exact:
+        b = np.argmax(spread)
+        if spread[b] <= 0.0:
+            return chosen
+        chosen[b] = True
+        uncertain -= spread[b]
+        spread[b] = 0.0
+        picks += 1
+    if picks == _PICKS:
         heavy = np.argsort(-spread)
         k = 0
         while k < buckets and spread[heavy[k]] > 0.0 and uncertain > budget * exact:
             chosen[heavy[k]] = True
             uncertain -= spread[heavy[k]]
             k += 1
+    return chosen
+
+
+@njit(cache=True, nogil=True)
+def _resolve_chosen(x, y, w, weighted, start, n, c, s, frame, acc, chosen, exact):
+    """(exact part, uncertainty) of one task once its ``chosen`` buckets are resolved.
+
+    The uncertainty left is summed afresh over the other crowded buckets (non-negative terms,
+    no cancellation).
+    """
+    buckets = frame[0]
+    uncertain = 0.0
     offsets = np.zeros(buckets + 1, dtype=np.int64)
     for b in range(buckets):
-        offsets[b + 1] = offsets[b] + (int(count[b]) if chosen[b] else 0)
+        k = acc[b, 3]
+        if chosen[b]:
+            offsets[b + 1] = offsets[b] + int(k)
+        else:
+            offsets[b + 1] = offsets[b]
+            if k > 2.0:
+                uncertain += (acc[b, 5] - acc[b, 4]) * 0.5 * acc[b, 0] * acc[b, 0]
     fill = offsets[:-1].copy()
     pv = np.empty(offsets[-1])
     wv = np.empty(offsets[-1])
     for i in range(start, start + n):
         p = x[i] * c + y[i] * s
-        b = _bin(p, radius, core, q, mid, s_tail, s_core, buckets)
+        b = _bin(p, frame)
         if chosen[b]:
             pv[fill[b]] = p
             wv[fill[b]] = w[i] if weighted else 1.0
             fill[b] += 1
     for b in range(buckets):
         if chosen[b]:
-            part, left = _resolve(pv[offsets[b] : offsets[b + 1]], wv[offsets[b] : offsets[b + 1]])
+            part, rest = _resolve(pv[offsets[b] : offsets[b + 1]], wv[offsets[b] : offsets[b + 1]])
             exact += part
-            uncertain += left
-    return exact, max(uncertain, 0.0), chain
+            uncertain += rest
+    return exact, uncertain
 
 
 @njit(cache=True, nogil=True)
@@ -221,21 +298,40 @@ def _resolve(p, w):
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget):
+def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bounds):
+    """Every (group, direction) task, in runs ``bounds[j]:bounds[j + 1]`` of consecutive tasks
+    (groups major): each run is one parallel iteration with one scratch accumulator."""
     m = cos_t.size
     exact = np.zeros(groups.size * m)
     uncertain = np.zeros(groups.size * m)
     chain = np.zeros(groups.size * m)
-    for task in prange(groups.size * m):
-        g = groups[task // m]
-        k = task % m
-        e, u, c = _one_task(
-            x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget
-        )
-        exact[task] = e
-        uncertain[task] = u
-        chain[task] = c
+    for j in prange(bounds.size - 1):
+        first, last = bounds[j], bounds[j + 1]
+        rows = 16
+        for task in range(first, last):
+            rows = max(rows, _bucket_count(counts[groups[task // m]]))
+        acc = np.empty((rows, 6))
+        _clear(acc, rows)
+        for task in range(first, last):
+            g = groups[task // m]
+            k = task % m
+            e, u, c = _one_task(
+                x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget, acc
+            )
+            exact[task] = e
+            uncertain[task] = u
+            chain[task] = c
     return exact, uncertain, chain
+
+
+def _runs(counts, m):
+    """Bounds of runs of consecutive tasks of about RUN_POINTS point-directions each (a larger
+    task is a run of its own): few scratch arrays, yet enough runs to keep every thread busy."""
+    work = np.repeat(counts, m)
+    begin = np.cumsum(work) - work
+    run = begin // RUN_POINTS
+    cut = np.flatnonzero(np.diff(run)) + 1
+    return np.concatenate([[0], cut, [work.size]]).astype(np.int64)
 
 
 def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, budget, core=None):
@@ -251,8 +347,9 @@ def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, b
     wv = w if weighted else np.zeros(1)
     groups = np.asarray(groups, dtype=np.int64)
     core = radius if core is None else core
+    bounds = _runs(counts[groups], cos_t.size)
     exact, uncertain, chain = _all_tasks(
-        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget
+        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bounds
     )
     shape = (groups.size, cos_t.size)
     return (
