@@ -37,7 +37,7 @@ def precompile() -> float | None:
         return None
     import numpy as np
 
-    from . import estimate
+    from . import estimate, kernels
     from .kernels import energy
 
     start = time.perf_counter()
@@ -47,12 +47,18 @@ def precompile() -> float | None:
     y = 6_120_000.0 + rng.normal(0.0, 500.0, n)
     codes = np.repeat(np.arange(3), n // 3)
     weights = rng.gamma(2.0, 1.5, n)
+    bx, by, bw = rng.normal(0.0, 800.0, 9000), rng.normal(0.0, 500.0, 9000), rng.gamma(2.0, 1.5, 9000)
     for w in (None, weights):
         for tolerance in (0.01, 1e-6):  # the tight one also takes the spatially ordered route
             for threads in (1, None):
                 estimate.grouped_pair_sums(
                     x, y, codes, 3, w, tolerance=tolerance, method="projection", threads=threads
                 )
+        # tight budgets on large groups take the narrow-bin kernel: one group of 9,000 points
+        # (as many as its bins need), on two directions
+        big = kernels.GroupLayout.build(bx, by, np.zeros(bx.size, dtype=np.int64), 1, None if w is None else bw)
+        for threads in (1, None):
+            kernels.projected_pair_raw(big, np.array([0]), 2, 1e-8, kernels.Ticker(None, 0), threads)
         estimate.grouped_point_sums(x, y, codes, 3, w, method="projection")
         estimate.cross_pair_sums(x, y, codes, 3, w, method="projection")
         for samples in (2, 3):  # spread-contrast: energy distance (two samples) and DISCO

@@ -32,6 +32,11 @@ def _compiled():
     return compiled_module("_bucketed")
 
 
+def _fine_bins():
+    """The kernel of narrow bins for tight budgets (needs numba, as :func:`_compiled`)."""
+    return compiled_module("_fine_bins")
+
+
 #: point-directions per call of the compiled kernel, so that progress can be reported
 _TASK_POINTS = 1 << 24
 #: below this many point-directions the compiled kernel runs on one thread
@@ -105,17 +110,27 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
     cos_t, sin_t = directions_unit_vectors(m)
     radius_sum = lay.radius_sum()[groups]
     weight_sum = lay.weight_sum[groups]
-    # Bins beat sorting except for tight tolerances on unweighted layers, where numpy's
-    # vectorised sort with nothing to gather is the faster exact route.
+    exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
+    chain = 2.0 * lay.counts  # cumulative sums over a row of n_g (the sorting route)
+    compiled = _compiled() is not None
+    # Tight budgets: enough narrow bins that none needs resolving, for groups with at least an
+    # eighth as many points as bins; smaller ones are sorted (unweighted) or bucketed and resolved.
     tight = budget < 1e-7
-    if _compiled() is not None and not (tight and lay.w is None):
+    bins = _fine_bins().bins_for_budget(budget) if compiled and tight else 0
+    fine = groups[lay.counts[groups] * _FINE_SPARSEST >= bins] if bins else groups[:0]
+    rest = groups[~np.isin(groups, fine)]
+    binned = rest if compiled and not (tight and lay.w is None) else rest[:0]
+    if fine.size or binned.size:
         source = _spatially_ordered(lay) if m >= _LOCALITY_DIRECTIONS else lay
-        exact_part, uncertain, chain = _bucketed_sums(source, groups, cos_t, sin_t, budget, tick, threads)
-    else:
-        exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
+    if fine.size:
+        exact_part[fine], uncertain[fine], chain[fine] = _fine_sums(source, fine, cos_t, sin_t, budget, tick, threads)
+    if binned.size:
+        e, u, c = _bucketed_sums(source, binned, cos_t, sin_t, budget, tick, threads)
+        exact_part[binned], uncertain[binned], chain[binned] = e[binned], u[binned], c[binned]
+    elif rest.size:
         workers = max(1, min(threads or _default_threads(), m))
         with ThreadPoolExecutor(workers) as pool:  # numpy's sort lets go of the GIL
-            for chunk, index, valid in lay.chunks(groups, lambda s: s):
+            for chunk, index, valid in lay.chunks(rest, lambda s: s):
                 cw = None if lay.w is None else lay.padded_weights(index, valid)
                 cx, cy, n = lay.x[index], lay.y[index], lay.counts[chunk]
                 jobs = [
@@ -124,7 +139,6 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
                 ]
                 exact_part[chunk] = np.sum([job.result() for job in jobs], axis=0)
                 tick(m * lay.counts[chunk].sum())
-        chain = 2.0 * lay.counts  # cumulative sums over a row of n_g
     # Rounding: every sum of one direction is bounded by W_g·Σ w_i r_i (|p_i| ≤ r_i, each
     # coefficient at most w_i·W_g) and built from chains of at most `chain` additions, so it is
     # within (2·chain + 6)·u·W_g·Σ w_i r_i of the exact projected sum of the exact
@@ -132,6 +146,9 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
     slack = m * (2 * chain[groups] + 6) * UNIT_ROUNDOFF * weight_sum * radius_sum
     return Raw(exact_part[groups], m, absolute=slack, uncertain=uncertain[groups])
 
+
+#: groups with fewer points per narrow bin than 1/this are sorted or bucketed instead
+_FINE_SPARSEST = 8
 
 #: from this many directions on, points are first put in a space-filling-curve order
 _LOCALITY_DIRECTIONS = 64
@@ -204,6 +221,23 @@ def _bucketed_sums(lay, groups, cos_t, sin_t, budget, tick, threads):
             exact_part[batch], uncertain[batch], chain[batch] = e, u, c
             tick(m * lay.counts[batch].sum())
     return exact_part, uncertain, chain
+
+
+def _fine_sums(lay, groups, cos_t, sin_t, budget, tick, threads):
+    """Exact part, uncertainty and addition chain of the projected sums of ``groups`` (large
+    groups at a tight budget), from narrow bins, in batches of groups for progress."""
+    m = cos_t.size
+    out = np.zeros((3, groups.size))
+    batches = np.cumsum(lay.counts[groups] * m) // _TASK_POINTS
+    radius = lay.radius_max()
+    with thread_limit(threads):
+        for batch in np.split(np.arange(groups.size), np.flatnonzero(np.diff(batches)) + 1):
+            g = groups[batch]
+            out[:, batch] = _fine_bins().fine_bin_sums(
+                lay.x, lay.y, lay.w, lay.starts, lay.counts, g, cos_t, sin_t, radius, budget
+            )
+            tick(m * lay.counts[g].sum())
+    return out
 
 
 #: a group's core of dense buckets spans ± this many RMS distances from its centre
