@@ -338,7 +338,7 @@ def _plain_points(geometry: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         try:
             shapely.get_x(part, out=x[a:b])
             shapely.get_y(part, out=y[a:b])
-        except shapely.errors.GEOSException:  # POINT EMPTY has no x
+        except (shapely.errors.GEOSException, TypeError):  # POINT EMPTY has no x; not a geometry
             failed.append(a)
             return False
         shapely.has_z(part, out=z[a:b])
@@ -353,7 +353,11 @@ def _plain_points(geometry: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         plain = all(block(a) for a in starts)
     else:
         with ThreadPoolExecutor(threads) as pool:
-            plain = all(list(pool.map(block, starts)))
+            try:
+                plain = all(list(pool.map(block, starts)))
+            except BaseException:  # e.g. Ctrl-C: the queued blocks return at once
+                failed.append(-1)
+                raise
     return (x, y) if plain else None
 
 
