@@ -38,6 +38,7 @@ def precompile() -> float | None:
     import numpy as np
 
     from . import estimate, kernels
+    from .estimate.single_pass import OnePass
     from .kernels import energy
 
     start = time.perf_counter()
@@ -60,6 +61,9 @@ def precompile() -> float | None:
         for threads in (1, None):
             kernels.projected_pair_raw(big, np.array([0]), 2, 1e-8, kernels.Ticker(None, 0), threads)
         estimate.grouped_point_sums(x, y, codes, 3, w, method="projection")
+        streamed = OnePass(tolerance=0.01, method="projection")  # one-pass streaming windows
+        streamed.add(x, y, w, codes, 3)
+        streamed.finish()
         estimate.cross_pair_sums(x, y, codes, 3, w, method="projection")
         for samples in (2, 3):  # spread-contrast: energy distance (two samples) and DISCO
             energy.energy_sums(x, y, codes % samples, w, directions=8, permutations=9, seed=1)

@@ -42,7 +42,17 @@ from .estimate.state import Survey
 from .layers import PointLayer
 from .layers.stream import LayerParts, prefetched
 
-__all__ = ["Prepared", "prepare", "binned", "pair_sums", "pair_sums_of_binned", "cross_sums", "coded_points", "SPILL_BYTES_PER_POINT"]
+__all__ = [
+    "Prepared",
+    "prepare",
+    "binned",
+    "pair_sums",
+    "pair_sums_of_binned",
+    "one_pass_sums",
+    "cross_sums",
+    "coded_points",
+    "SPILL_BYTES_PER_POINT",
+]
 
 #: bytes a point takes in the spill: x, y and weight as float64, its batch-local group code
 SPILL_BYTES_PER_POINT = 28
@@ -189,11 +199,15 @@ def _mapping(keys: KeyTable, local: KeyTable, label: str) -> np.ndarray:
         return np.zeros(1, dtype=np.int64)
     codes = keys.codes(local.keys)
     if (codes < 0).any():
-        raise InputError(
-            f"{label} changed while it was read (a group appeared that the first pass did not "
-            "see); run again when nothing writes to it."
-        )
+        raise _changed(label)
     return codes
+
+
+def _changed(label: str) -> InputError:
+    return InputError(
+        f"{label} changed while it was read (a group appeared that the first pass did not "
+        "see); run again when nothing writes to it."
+    )
 
 
 def _merge_states(states: list):
@@ -374,6 +388,98 @@ def _empty(parts: LayerParts) -> InputError:
     return InputError(
         f"{parts.label} has no feature to compute with; check the input and any {spell('where')} filter."
     )
+
+
+# --------------------------------------------------------------------------------------------
+# one pass, when no survey is needed
+
+
+def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tolerance, method):
+    """Every group's pair total from one read of the layer, or None when the planned passes
+    are needed (see :mod:`toolbox.estimate.single_pass`): geodesic distances, exact sums, or
+    windows that would take too much memory.
+
+    Groups too dense for their windows (in-bin uncertainty above the budget) are read a second
+    time, their points alone, and summed as a layer read whole would be, if they fit in
+    memory (else None). Returns ``(sums, keys)``: the sums with groups in the order of
+    ``keys`` (a :class:`~toolbox.batchkeys.KeyTable`), as :func:`prepare` and
+    :func:`pair_sums` give them.
+    """
+    from .estimate.single_pass import GATHER_POINTS, OnePass, TooLarge
+
+    if setup.kind != "planar" or tolerance == 0 or method == "exact" or not _compiled_kernels():
+        return None
+    group_by = tuple(group_by or ())
+    fields = [*group_by, *([weight] if weight else [])]
+    parts.check_fields(fields)
+    registry, sketch = KeyRegistry(group_by), OnePass(tolerance=tolerance, method=method)
+
+    def coded():
+        for batch in prefetched(parts.batches(fields, batch_rows)):
+            decoded = _decode(batch, group_by, weight, setup)
+            yield decoded, registry.add(decoded.keys.keys)[decoded.local_codes]
+
+    try:
+        for x, y, w, running in _chunks(coded(), max(batch_rows, ONE_PASS_CHUNK)):
+            sketch.add(x, y, w, running, registry.count)
+    except TooLarge:
+        return None
+    if sketch.n_groups == 0:
+        raise _empty(parts)
+    sums = sketch.finish()
+    again = np.flatnonzero(sketch.over_budget)
+    if again.size:
+        if sketch.count[again].sum() > GATHER_POINTS:
+            return None
+        known = registry.count
+        picked = []
+        for decoded, running in coded():
+            if registry.count != known:
+                raise _changed(parts.label)
+            keep = np.isin(running, again)
+            w = None if decoded.w is None else decoded.w[keep]
+            picked.append((decoded.x[keep], decoded.y[keep], w, np.searchsorted(again, running[keep])))
+        x, y, w, codes = (list(column) for column in zip(*picked, strict=True))
+        points = estimate.Points.build(
+            np.concatenate(x), np.concatenate(y), np.concatenate(codes), again.size,
+            None if w[0] is None else np.concatenate(w), distance=setup,
+        )  # fmt: skip
+        closer = estimate.pair_sums(points, tolerance=tolerance, method=method)
+        for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
+            getattr(sums, name)[again] = getattr(closer, name)
+    keys, order = registry.table()
+    position = np.empty_like(order)
+    position[order] = np.arange(order.size)  # running code of every row of keys
+    return replace(sums, **{k: v[position] for k, v in vars(sums).items()}), keys
+
+
+#: points binned at a time in one pass: each group's windows then take many points per visit
+#: (they stay in cache), not a few scattered ones
+ONE_PASS_CHUNK = 1 << 22
+
+
+def _chunks(coded, size: int):
+    """Decoded batches joined into chunks of at least ``size`` points: (x, y, w, codes)."""
+    waiting, held = [], 0
+    for decoded, running in coded:
+        waiting.append((decoded.x, decoded.y, decoded.w, running))
+        held += running.size
+        if held >= size:
+            yield _joined(waiting)
+            waiting, held = [], 0
+    if waiting:
+        yield _joined(waiting)
+
+
+def _joined(batches):
+    x, y, w, codes = (list(column) for column in zip(*batches, strict=True))
+    return np.concatenate(x), np.concatenate(y), None if w[0] is None else np.concatenate(w), np.concatenate(codes)
+
+
+def _compiled_kernels() -> bool:
+    from .kernels._common import compiled_module
+
+    return compiled_module("dyadic") is not None
 
 
 # --------------------------------------------------------------------------------------------

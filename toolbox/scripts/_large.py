@@ -129,7 +129,14 @@ def pair_sums(
     """
     setup = estimate.distance_setup(parts.crs, parts.label, distance=distance, target=crs, script=script)
     rows = stream.DEFAULT_BATCH_ROWS if batch_rows is None else batch_rows
-    with cluster.connected(_address(parts, dask_scheduler)) as client:
+    address = _address(parts, dask_scheduler)
+    if address is None:  # one read of the layer, when that is enough
+        common = dict(group_by=group_by, weight=weight, setup=setup, batch_rows=rows)
+        once = streaming.one_pass_sums(parts, **common, tolerance=tolerance, method=method)
+        if once is not None:
+            sums, keys = once
+            return Streamed(sums, keys.grouping().keys, setup.units)
+    with cluster.connected(address) as client:
         with streaming.prepare(
             parts, group_by=group_by, weight=weight, setup=setup, batch_rows=rows, client=client
         ) as ready:
