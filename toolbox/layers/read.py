@@ -327,7 +327,7 @@ def _plain_points(geometry: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     takes the general path with its messages.
     """
     n = geometry.size
-    x, y, z = np.empty(n), np.empty(n), np.empty(n, dtype=bool)
+    x, y = np.empty(n), np.empty(n)
     failed: list[int] = []  # once a block is not plain, the others stop early
 
     def block(a: int) -> bool:
@@ -341,8 +341,7 @@ def _plain_points(geometry: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         except (shapely.errors.GEOSException, TypeError):  # POINT EMPTY has no x; not a geometry
             failed.append(a)
             return False
-        shapely.has_z(part, out=z[a:b])
-        if np.isfinite(x[a:b]).all() and np.isfinite(y[a:b]).all() and not z[a:b].any():
+        if np.isfinite(x[a:b]).all() and np.isfinite(y[a:b]).all() and not shapely.has_z(part).any():
             return True
         failed.append(a)
         return False

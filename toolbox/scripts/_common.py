@@ -134,7 +134,7 @@ def group_points(layer, group_by, weight, setup, *, note: bool = False) -> Group
         layer.y,
         layer.crs,
         layer.label,
-        groups.codes[layer.feature],
+        groups.codes[layer.feature] if groups.count != 1 else None,  # one group: no per-point codes to gather
         groups.count,
         point_weights,
         names=grouping.group_namer(groups.keys),
