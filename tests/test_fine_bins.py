@@ -143,6 +143,19 @@ def test_each_direction_lies_in_its_bins_interval(angle, weighted):
 
 
 @pytest.mark.parametrize("weighted", [False, True], ids=["unweighted", "weighted"])
+def test_a_dense_cluster_beside_far_outliers_needs_no_sort(weighted):
+    # the tail bins widen away from the core, so the cluster's edge stays in narrow ones and
+    # the budget is met by the bins alone
+    x, y, w = cluster_with_outliers(N, seed=76)
+    w = w if weighted else None
+    for angle in (0.0, 0.7, 2.0):
+        exact, uncertain, reference = one_direction(x, y, w, angle, BUDGET)
+        assert 0 < uncertain <= BUDGET * exact
+        slack = 1e-12 * reference
+        assert exact - slack <= reference <= exact + uncertain + slack
+
+
+@pytest.mark.parametrize("weighted", [False, True], ids=["unweighted", "weighted"])
 def test_a_direction_that_misses_the_budget_is_sorted(weighted):
     x, y, w = tiny_clusters(N, seed=74)
     w = w if weighted else None
