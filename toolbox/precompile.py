@@ -64,6 +64,17 @@ def precompile() -> float | None:
         streamed = OnePass(tolerance=0.01, method="projection")  # one-pass streaming windows
         streamed.add(x, y, w, codes, 3)
         streamed.finish()
+        # group codes out of order (the layout's counting sort), and read-only arrays (from
+        # Arrow buffers, say), which numba compiles apart
+        shuffled = np.ascontiguousarray(codes[::-1])
+        frozen = [None if a is None else a.copy() for a in (x, y, w, shuffled)]
+        for a in frozen:
+            if a is not None:
+                a.setflags(write=False)
+        for order in (codes, shuffled):
+            estimate.grouped_pair_sums(x, y, order, 3, w, method="projection")
+        for order in (codes, frozen[3]):
+            estimate.grouped_pair_sums(*frozen[:2], order, 3, frozen[2], method="projection")
         estimate.cross_pair_sums(x, y, codes, 3, w, method="projection")
         for samples in (2, 3):  # spread-contrast: energy distance (two samples) and DISCO
             energy.energy_sums(x, y, codes % samples, w, directions=8, permutations=9, seed=1)

@@ -231,11 +231,11 @@ class _GeodesicPlan:
             out.note[index_of(g)] = note
 
 
-def _layout(points):
+def _layout(points, threads=None):
     """Whether the points are geodesic, and their group layout (planar ones centred per group)."""
     geodesic = points.distance.kind == "geodesic"
     lay = GroupLayout.build(
-        points.x, points.y, points.groups, points.n_groups, points.weights, centred=not geodesic
+        points.x, points.y, points.groups, points.n_groups, points.weights, centred=not geodesic, threads=threads
     )
     return geodesic, lay
 
@@ -283,7 +283,7 @@ def pair_sums(
         plain = pair_sums(replace(points, shift=None), tolerance=tolerance / 2, method=method, progress=progress, threads=threads)
         return pieces.widen_pairs(plain, points)
     check_method(method, tolerance)
-    geodesic, lay = _layout(points)
+    geodesic, lay = _layout(points, threads)
     counts = lay.counts
     pair_weight = lay.pair_weight()
     live = np.flatnonzero((counts >= 2) & (pair_weight > 0))

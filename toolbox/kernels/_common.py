@@ -22,6 +22,8 @@ BLOCK_ELEMENTS = 1 << 21
 _RADIUS_BLOCK = 1 << 16
 #: groups up to this size are summed exactly all at once in a padded (groups, s, s) block
 SMALL_EXACT = 64
+#: layouts of fewer points are built on one thread
+_PARALLEL_POINTS = 1 << 18
 
 Progress = Callable[[int, int], None]
 
@@ -174,6 +176,17 @@ def _before(w: np.ndarray) -> np.ndarray:
 
 
 @dataclass(frozen=True)
+class GroupSums:
+    """Per-group sums of a centred layout: Σ_{i<j} w_i w_j, the largest distance of a point from
+    the centre, Σ w_i r_i and Σ r_i² (``r`` those distances)."""
+
+    pair_weight: np.ndarray
+    radius_max: np.ndarray
+    radius_sum: np.ndarray
+    radius_sq_sum: np.ndarray
+
+
+@dataclass(frozen=True)
 class GroupLayout:
     """Points sorted by group, each group centred on its (weighted) mean (see :func:`centre`)."""
 
@@ -187,13 +200,23 @@ class GroupLayout:
     w: np.ndarray | None  # None: unweighted
     wpt: np.ndarray  # weights, ones when unweighted
     weight_sum: np.ndarray
+    #: per-group sums computed with the layout (compiled route), else on first use
+    sums: GroupSums | None = None
 
     @classmethod
-    def build(cls, x, y, groups, n_groups, weights, *, centred: bool = True) -> GroupLayout:
+    def build(
+        cls, x, y, groups, n_groups, weights, *, centred: bool = True, threads: int | None = None
+    ) -> GroupLayout:
         """Sort the points by group; ``centred`` False keeps the coordinates as they are
-        (longitudes and latitudes for the geodesic kernels)."""
+        (longitudes and latitudes for the geodesic kernels). ``threads`` bounds the threads of
+        the compiled route (None: numba's current setting)."""
         # points already in group order (one group, say) are not copied into a new order
         ordered = n_groups == 1 or bool(np.all(groups[1:] >= groups[:-1]))
+        compiled = compiled_module("_layout")
+        if compiled is not None:
+            # a few milliseconds of work would not repay waking the other threads
+            with thread_limit(threads if x.size >= _PARALLEL_POINTS else 1):
+                return cls._build_compiled(compiled, x, y, groups, n_groups, weights, centred, ordered)
         order = None
         if not ordered:
             # a stable sort of 16-bit codes is a radix sort in numpy: linear time
@@ -209,6 +232,48 @@ class GroupLayout:
         weight_sum = counts.astype(np.float64) if weights is None else np.bincount(groups, weights, n_groups)
         return cls(n_groups, order, groups, counts, starts, xs, ys, weights, wpt, weight_sum)
 
+    @classmethod
+    def _build_compiled(cls, compiled, x, y, groups, n_groups, weights, centred, ordered) -> GroupLayout:
+        """:meth:`build` with the compiled kernels: a counting sort, then two parallel passes
+        that centre the groups and sum what the other kernels need per group."""
+        counts = np.bincount(groups, minlength=n_groups).astype(np.int64)
+        starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
+        weighted = weights is not None
+        w = weights if weighted else np.zeros(1)
+        index = np.zeros(0)
+        if not ordered:
+            codes = np.ascontiguousarray(groups, dtype=np.int64)
+            rec = compiled.group_records(codes, starts, x, y, w, weighted)
+            x, y, index = rec[:, 0], rec[:, 1], rec[:, -1]
+            w = rec[:, 2] if weighted else w
+            groups = np.repeat(np.arange(n_groups, dtype=np.int64), counts)
+        # pieces of at most PIECE points of one group, so that one large group is shared out too
+        per_group = -(-counts // compiled.PIECE)
+        piece_group = np.repeat(np.arange(n_groups), per_group)
+        first = np.cumsum(per_group) - per_group
+        offset = np.arange(piece_group.size) - first[piece_group]
+        piece_start = starts[piece_group] + offset * compiled.PIECE
+        piece_stop = np.minimum(piece_start + compiled.PIECE, (starts + counts)[piece_group])
+        n, moved = x.size, index.size > 0
+        out = (
+            np.empty(n),
+            np.empty(n),
+            np.empty(n if moved and weighted else 0),
+            np.empty(n if moved else 0, dtype=np.int64),
+        )
+        pieces = (piece_group, piece_start, piece_stop)
+        weight_sum, pair_weight, radius_max, radius_sum, radius_sq_sum = compiled.centre_pieces(
+            x, y, w, weighted, index, centred, *pieces, n_groups, out
+        )
+        xs, ys = out[0], out[1]
+        order = out[3] if moved else None
+        weights = None if not weighted else out[2] if moved else weights
+        if not weighted:
+            weight_sum = counts.astype(np.float64)
+        wpt = np.broadcast_to(1.0, xs.shape) if weights is None else weights
+        sums = GroupSums(pair_weight, radius_max, radius_sum, radius_sq_sum) if centred else None
+        return cls(n_groups, order, groups, counts, starts, xs, ys, weights, wpt, weight_sum, sums)
+
     def unsort(self, values: np.ndarray) -> np.ndarray:
         """Per-point values in group order put back in input order."""
         if self.order is None:
@@ -221,6 +286,8 @@ class GroupLayout:
         """Σ_{i<j} w_i w_j per group, as Σ_i w_i·(weight before i): no cancellation."""
         if self.w is None:
             return self.counts * (self.counts - 1) / 2.0
+        if self.sums is not None:
+            return self.sums.pair_weight
         out = np.zeros(self.n_groups)
         for chunk, index, valid in self.chunks(np.flatnonzero(self.counts > 1), lambda s: s):
             w = self.padded_weights(index, valid)
@@ -258,6 +325,8 @@ class GroupLayout:
 
     def radius_max(self) -> np.ndarray:
         """Largest distance of a point from its group's centre, per group (0 when empty)."""
+        if self.sums is not None:
+            return self.sums.radius_max
         out = np.zeros(self.n_groups)
         filled = self.counts > 0
         if filled.any():
@@ -303,7 +372,13 @@ class GroupLayout:
 
     def radius_sum(self) -> np.ndarray:
         """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
-        return self._radius_sum
+        return self._radius_sum if self.sums is None else self.sums.radius_sum
+
+    def radius_sq_sum(self) -> np.ndarray:
+        """Σ r_i² per group (unweighted), r_i the distance of point i from its group's centre."""
+        if self.sums is not None:
+            return self.sums.radius_sq_sum
+        return np.bincount(self.codes, self.radius * self.radius, self.n_groups)
 
 
 def weights_of_others(groups, n_groups: int, weights) -> tuple[np.ndarray, np.ndarray]:

@@ -255,8 +255,7 @@ def _bucket_core(lay, radius):
     small = lay.counts < 2 * _compiled().MAX_BUCKETS
     if not small.any():
         return radius
-    r = lay.radius
-    rms = np.sqrt(np.bincount(lay.codes, r * r, lay.n_groups) / np.maximum(lay.counts, 1))
+    rms = np.sqrt(lay.radius_sq_sum() / np.maximum(lay.counts, 1))
     return np.where(small, np.minimum(_CORE_SPAN * rms, radius), radius)
 
 
