@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..kernels import UNIT_ROUNDOFF, Raw, costs
+from ..kernels import UNIT_ROUNDOFF, Raw, check_points, costs
 from ..kernels._common import compiled_module, directions_unit_vectors
 from .interval import bin_budget, check_method, interval, projection_directions
 from .points import Points
@@ -122,6 +122,7 @@ class OnePass:
 
     def add(self, x, y, w, groups, n_groups: int) -> None:
         """Add a batch of points; ``groups`` are codes below ``n_groups`` (which may grow)."""
+        x, y, w = check_points(x, y, w)  # a NaN would fall in no window
         self._grow_groups(n_groups)
         small = np.uint16 if n_groups <= np.iinfo(np.uint16).max else np.int64
         order = np.argsort(groups.astype(small), kind="stable")  # 16 bits: a radix sort

@@ -102,7 +102,6 @@ def add_segments(x, y, w, weighted, starts, slots, cells, expo, origin, cos_t, s
     ``slots[s]`` (segments with slot -1 are skipped). Segments of different slots run in
     parallel; each slot appears in one segment only."""
     m = cos_t.size
-    bins = cells.shape[2]
     for s in prange(slots.size):
         slot = slots[s]
         if slot < 0:
@@ -112,29 +111,44 @@ def add_segments(x, y, w, weighted, starts, slots, cells, expo, origin, cos_t, s
             continue
         for d in range(m):
             c, sn = cos_t[d], sin_t[d]
-            lo, hi = np.inf, -np.inf
-            for i in range(start, stop):
-                p = x[i] * c + y[i] * sn
-                lo = min(lo, p)
-                hi = max(hi, p)
-            _cover(cells, expo, origin, slot, d, lo, hi)
-            e, o = expo[slot, d], origin[slot, d]
-            # 2^-e is exact where it is a normal float; beyond, ldexp per value
-            scaled = -1000 < e < 1000
-            scale = math.ldexp(1.0, -e) if scaled else 1.0
-            for i in range(start, stop):
-                p = x[i] * c + y[i] * sn
-                k = np.floor(p * scale) if scaled else np.floor(math.ldexp(p, -e))
-                j = min(max(int(k) - o, 0), bins - 1)
-                wi = w[i] if weighted else 1.0
-                cells[slot, d, j, 0] += wi
-                cells[slot, d, j, 1] += wi * p
-                cells[slot, d, j, 2] += wi * wi
-                cells[slot, d, j, 3] += 1.0
-                if p < cells[slot, d, j, 4]:
-                    cells[slot, d, j, 4] = p
-                if p > cells[slot, d, j, 5]:
-                    cells[slot, d, j, 5] = p
+            i = start
+            while i < stop:
+                if expo[slot, d] != EMPTY:
+                    i = _add_while_inside(x, y, w, weighted, i, stop, cells[slot, d], expo[slot, d], origin[slot, d], c, sn)
+                if i < stop:  # a value outside the window: make it hold every value left
+                    lo, hi = np.inf, -np.inf
+                    for k in range(i, stop):
+                        p = x[k] * c + y[k] * sn
+                        lo = min(lo, p)
+                        hi = max(hi, p)
+                    _cover(cells, expo, origin, slot, d, lo, hi)
+
+
+@njit(cache=True, nogil=True)
+def _add_while_inside(x, y, w, weighted, i, stop, window, e, o, c, sn):
+    """Add points from ``i`` on to one window while their values fall inside it; returns the
+    first point whose value does not (``stop`` when all did)."""
+    bins = window.shape[0]
+    # 2^-e is exact where it is a normal float; beyond, ldexp per value
+    scaled = -1000 < e < 1000
+    scale = math.ldexp(1.0, -e) if scaled else 1.0
+    while i < stop:
+        p = x[i] * c + y[i] * sn
+        k = (np.floor(p * scale) if scaled else np.floor(math.ldexp(p, -e))) - o
+        if not (0.0 <= k < bins):  # compared as a float: a far value would overflow an integer
+            return i
+        j = int(k)
+        wi = w[i] if weighted else 1.0
+        window[j, 0] += wi
+        window[j, 1] += wi * p
+        window[j, 2] += wi * wi
+        window[j, 3] += 1.0
+        if p < window[j, 4]:
+            window[j, 4] = p
+        if p > window[j, 5]:
+            window[j, 5] = p
+        i += 1
+    return stop
 
 
 @njit(cache=True, nogil=True)
