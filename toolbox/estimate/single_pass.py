@@ -6,7 +6,7 @@ read at least twice. Here each (group, direction) gets a window of power-of-two 
 place when a value falls outside it, so the bins end up as fine as the group's final extent
 allows, within a factor of four. Pairs in different bins are summed exactly and pairs in one
 bin bounded by its spread of values, through the same arithmetic as the binned state
-(``_bin_sums``, :func:`.interval.interval`); a group of up to ``gather`` points keeps its
+(``state._bin_sums``, here compiled, and :func:`.interval.interval`); a group of up to ``gather`` points keeps its
 points and gets the exact sums the in-memory path would give it.
 
 Windows use about twice the bins the planned state gives a group, so that coarsening by a
@@ -30,7 +30,6 @@ from ..kernels._common import compiled_module, directions_unit_vectors
 from .interval import bin_budget, check_method, interval, projection_directions
 from .points import Points
 from .results import GroupPairSums
-from .state import _bin_sums
 
 __all__ = ["OnePass", "TooLarge", "WINDOW_BYTES"]
 
@@ -124,12 +123,10 @@ class OnePass:
         """Add a batch of points; ``groups`` are codes below ``n_groups`` (which may grow)."""
         x, y, w = check_points(x, y, w)  # a NaN would fall in no window
         self._grow_groups(n_groups)
-        small = np.uint16 if n_groups <= np.iinfo(np.uint16).max else np.int64
-        order = np.argsort(groups.astype(small), kind="stable")  # 16 bits: a radix sort
-        g = groups[order]
-        x, y = x[order], y[order]
-        w = None if w is None else np.ascontiguousarray(w[order], dtype=np.float64)
-        counts = np.bincount(g, minlength=n_groups)
+        codes = np.ascontiguousarray(groups, dtype=np.int64)
+        weighted = w is not None
+        x, y, w, g, counts = self._kernel.by_group(x, y, w if weighted else np.zeros(1), weighted, codes, n_groups)
+        w = w if weighted else None
         present = np.flatnonzero(counts)
         starts = np.concatenate([[0], np.cumsum(counts[present])]).astype(np.int64)
         self._survey(x, y, w, g, present, counts, starts)
@@ -197,13 +194,20 @@ class OnePass:
     def _too_dense(self, groups: np.ndarray) -> np.ndarray:
         """Those of newly binned ``groups`` whose first points already leave more than
         ``DENSE_SHARE`` of their budget uncertain: clusters narrower than their bins."""
+        if groups.size == 0:
+            return groups
+        exact, uncertain = self._window_sums(groups)
         budget = bin_budget(self.tolerance, self.m)
-        dense = []
-        for group in groups:
-            exact, uncertain = _bin_sums(*np.moveaxis(self._window(group), -1, 0))
-            if uncertain.sum() > DENSE_SHARE * budget * exact.sum():
-                dense.append(group)
-        return np.asarray(dense, dtype=np.int64)
+        return groups[uncertain.sum(axis=1) > DENSE_SHARE * budget * exact.sum(axis=1)]
+
+    def _window_sums(self, groups: np.ndarray):
+        """Exact part and in-bin uncertainty of the windows of ``groups``, (groups, directions)."""
+        exact, uncertain = np.zeros((groups.size, self.m)), np.zeros((groups.size, self.m))
+        arena, slot = np.divmod(self.slot[groups], ARENA_WINDOWS)
+        for a in np.unique(arena):
+            mine = arena == a
+            exact[mine], uncertain[mine] = self._kernel.window_sums(self.arenas[a][0], slot[mine], UNIT_ROUNDOFF)
+        return exact, uncertain
 
     def _demote(self, groups: np.ndarray, moved) -> None:
         """Keep the points of ``groups`` from now on (the windows' points come back from
@@ -275,17 +279,16 @@ class OnePass:
             for name in ("total", "lower", "upper", "rel_bound", "exact", "directions"):
                 getattr(out, name)[kept] = getattr(r, name)[kept]
         budget = bin_budget(self.tolerance, self.m)
-        live = (~kept) & (self.pair_weight > 0)
-        for group in np.flatnonzero(live):
-            W, S, Q, C, lo, hi = np.moveaxis(self._window(group), -1, 0)
-            exact, uncertain = _bin_sums(W, S, Q, C, lo, hi)
-            if uncertain.sum() > budget * exact.sum():
-                self.over_budget[group] = True
+        live = np.flatnonzero((~kept) & (self.pair_weight > 0))
+        exact, uncertain = self._window_sums(live)
+        exact, uncertain = exact.sum(axis=1), np.maximum(uncertain.sum(axis=1), 0.0)
+        self.over_budget[live] = uncertain > budget * exact
+        for k, group in enumerate(live):
             # rounding as in the planned state, with |p| ≤ |x| + |y| for the uncentred values,
             # and each value's own rounding (≤ 2u(|x| + |y|)) added per direction
-            chain = 2.0 * self.bins + 8.0 + float(C.max())
+            chain = 2.0 * self.bins + 8.0 + float(self._window(group)[..., 3].max())
             slack = self.m * (2 * chain + 8) * UNIT_ROUNDOFF * self.weight_sum[group] * self.size_sum[group]
-            raw = Raw(float(exact.sum()), self.m, absolute=slack, uncertain=float(max(uncertain.sum(), 0.0)))
+            raw = Raw(float(exact[k]), self.m, absolute=slack, uncertain=float(uncertain[k]))
             out.put(group, *interval(raw), exact=False, directions=self.m)
         return GroupPairSums(
             n_points=self.count.copy(),

@@ -171,3 +171,67 @@ def new_windows(slots: int, directions: int, bins: int):
     expo = np.full((slots, directions), EMPTY, dtype=np.int64)
     origin = np.zeros((slots, directions), dtype=np.int64)
     return cells, expo, origin
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def window_sums(cells, slots, roundoff):
+    """Exact part and in-bin uncertainty of every window of ``slots``, (slots, directions) each.
+
+    The arithmetic of ``toolbox.estimate.state._bin_sums`` in one pass over the bins: pairs in
+    different bins ``Σ_b S_b·W_<b − W_b·S_<b``; pairs in one bin between 0 and its spread of
+    values apart, with pair weight ``(W_b² − Q_b)/2`` up to ``2u·W_b²`` of rounding, at most
+    ``W_b²/2``; a bin of two points holds one pair exactly its spread apart.
+    """
+    m, bins = cells.shape[1], cells.shape[2]
+    exact = np.zeros((slots.size, m))
+    uncertain = np.zeros((slots.size, m))
+    for t in prange(slots.size * m):
+        k, d = t // m, t % m
+        window = cells[slots[k], d]
+        before_w, before_s, e, u = 0.0, 0.0, 0.0, 0.0
+        for j in range(bins):
+            count = window[j, 3]
+            if count == 0.0:
+                continue
+            wb, sb = window[j, 0], window[j, 1]
+            e += sb * before_w - wb * before_s
+            before_w += wb
+            before_s += sb
+            if count >= 2.0:
+                spread = window[j, 5] - window[j, 4]
+                pair = 0.5 * (wb * wb - window[j, 2])
+                slack = 2.0 * roundoff * wb * wb
+                pair_hi = min(0.5 * wb * wb, pair + slack)
+                pair_lo = max(pair - slack, 0.0) if count == 2.0 else 0.0
+                e += spread * pair_lo
+                u += spread * (pair_hi - pair_lo)
+        exact[k, d] = e
+        uncertain[k, d] = u
+    return exact, uncertain
+
+
+@njit(cache=True, nogil=True)
+def by_group(x, y, w, weighted, groups, n_groups):
+    """Points ordered by group code (a stable counting sort, one pass to count and one to
+    place): x, y, weights (ones' placeholder when unweighted), codes, and the count per group."""
+    counts = np.zeros(n_groups, dtype=np.int64)
+    for i in range(groups.size):
+        counts[groups[i]] += 1
+    place = np.empty(n_groups, dtype=np.int64)
+    total = 0
+    for g in range(n_groups):
+        place[g] = total
+        total += counts[g]
+    xs, ys = np.empty(x.size), np.empty(x.size)
+    ws = np.empty(x.size if weighted else 1)
+    gs = np.empty(x.size, dtype=np.int64)
+    for i in range(groups.size):
+        g = groups[i]
+        k = place[g]
+        place[g] = k + 1
+        xs[k] = x[i]
+        ys[k] = y[i]
+        gs[k] = g
+        if weighted:
+            ws[k] = w[i]
+    return xs, ys, ws, gs, counts

@@ -1,0 +1,77 @@
+"""The one-pass windows of power-of-two bins (toolbox/kernels/dyadic.py) against brute force.
+
+References: the exact projected pair sum Σ_{i<j} w_i w_j |p_i − p_j| of each direction, by
+sorting (a handbook identity: with the values sorted, Σ_i w_i p_i (2·W_<i + w_i − W)); and the
+binned state's own finishing arithmetic (state._bin_sums), which the compiled sums repeat.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+pytest.importorskip("numba")
+
+from toolbox.estimate.state import _bin_sums  # noqa: E402
+from toolbox.kernels import UNIT_ROUNDOFF, dyadic  # noqa: E402
+
+
+def _projected_pair_sum(p, w):
+    order = np.argsort(p, kind="stable")
+    p, w = p[order], w[order]
+    before = np.cumsum(w) - w
+    return float(np.sum(w * p * (2 * before + w - w.sum())))
+
+
+def _windows(batches, bins=64, m=3):
+    """One group's windows after adding ``batches`` of (x, y, w) one after the other."""
+    theta = np.arange(m) * np.pi / m
+    cells, expo, origin = dyadic.new_windows(1, m, bins)
+    for x, y, w in batches:
+        starts = np.array([0, x.size], dtype=np.int64)
+        dyadic.add_segments(x, y, w, True, starts, np.array([0]), cells, expo, origin, np.cos(theta), np.sin(theta))
+    return cells, expo, np.cos(theta), np.sin(theta)
+
+
+@pytest.mark.parametrize(
+    "layout",
+    ["spread", "growing", "far_apart", "one_value", "near_zero"],
+)
+def test_windows_hold_the_exact_projected_sum(layout):
+    rng = np.random.default_rng(5)
+    if layout == "spread":  # UTM-like metres, batches from the same cloud
+        xy = [rng.normal((500_000, 6_120_000), 300, (400, 2)) for _ in range(5)]
+    elif layout == "growing":  # each batch wider than the last: the window coarsens each time
+        xy = [rng.normal((500_000, 6_120_000), 10.0**k, (300, 2)) for k in range(6)]
+    elif layout == "far_apart":  # a cluster, then one point a thousand kilometres off, then more
+        xy = [rng.normal(0, 1, (200, 2)), np.array([[1e6, -1e6]]), rng.normal(0, 1, (200, 2))]
+    elif layout == "one_value":  # one repeated value, then a second one
+        xy = [np.full((50, 2), 7.25), np.full((50, 2), 7.25), np.array([[7.5, 7.0]])]
+    else:  # zero and values near the smallest normal float, then ordinary ones
+        xy = [np.zeros((10, 2)), np.full((10, 2), 1e-300), rng.normal(0, 1, (100, 2))]
+    batches = [(v[:, 0].copy(), v[:, 1].copy(), rng.uniform(0.5, 3, len(v))) for v in xy]
+    cells, expo, cos_t, sin_t = _windows(batches)
+    x, y, w = (np.concatenate(c) for c in zip(*batches, strict=True))
+    W, S, Q, C, lo, hi = np.moveaxis(cells[0], -1, 0)
+    exact, uncertain = _bin_sums(W, S, Q, C, lo, hi)
+    for d in range(cos_t.size):
+        truth = _projected_pair_sum(x * cos_t[d] + y * sin_t[d], w)
+        slack = 1e-9 * max(abs(truth), 1e-300) + 1e-12 * np.sum(w) ** 2 * np.abs(np.r_[x, y]).max()
+        assert exact[d] - slack <= truth <= exact[d] + uncertain[d] + slack, (layout, d)
+        assert C[d].sum() == x.size  # every point in one bin
+    # the compiled finishing sums repeat the state's (up to the order of additions)
+    e2, u2 = dyadic.window_sums(cells, np.array([0]), UNIT_ROUNDOFF)
+    np.testing.assert_allclose(e2[0], exact, rtol=1e-9, atol=1e-9 * np.abs(exact).max() + 1e-300)
+    np.testing.assert_allclose(u2[0], uncertain, rtol=1e-9, atol=1e-9 * np.abs(uncertain).max() + 1e-300)
+
+
+def test_bins_are_ordered_like_their_values():
+    rng = np.random.default_rng(8)
+    values = rng.normal(6_120_000, 2_000, 5_000)
+    batches = [(values[a : a + 500], np.zeros(500), np.ones(500)) for a in range(0, 5_000, 500)]
+    cells, _, _, _ = _windows(batches, bins=256, m=1)
+    window = cells[0, 0]
+    used = window[:, 3] > 0
+    lo, hi = window[used, 4], window[used, 5]
+    assert np.all(hi[:-1] < lo[1:])  # consecutive bins hold disjoint, increasing ranges
+    assert window[:, 3].sum() == values.size
