@@ -348,7 +348,20 @@ def zero_weights_far_away_layout(seed=47):
     return x, y, w
 
 
+def two_stacks_layout(seed=48):
+    # 400 sites 1 km apart at most, each two points on one spot and two on another 1 cm away:
+    # a bucket holding a site has half its weight at each end of its spread, the case where its
+    # pairs reach the bound the bucketed kernel reports for them (width × W²/4)
+    rng = np.random.default_rng(seed)
+    sites = rng.uniform(0, 1000, (400, 2))
+    step = rng.normal(size=(400, 2))
+    step *= 0.01 / np.hypot(step[:, :1], step[:, 1:])
+    spots = np.stack([sites, sites, sites + step, sites + step], axis=1).reshape(-1, 2)
+    return spots[:, 0], spots[:, 1], None
+
+
 LAYOUTS = {
+    "two stacks per site": lambda tol: two_stacks_layout(),
     "line halfway": lambda tol: line_layout(tol, halfway=True),
     "line along a direction": lambda tol: line_layout(tol, halfway=False),
     "remote point first": lambda tol: remote_point_layout(first=True),

@@ -59,7 +59,6 @@ def check_layout(lay, x, y, codes, n_groups, w):
         r = np.hypot(lay.x[sl], lay.y[sl])
         assert lay.radius_max()[g] == pytest.approx(r.max(), rel=1e-12)
         assert lay.radius_sum()[g] == pytest.approx(math.fsum(ws * r), rel=1e-12)
-        assert lay.radius_sq_sum()[g] == pytest.approx(math.fsum(r * r), rel=1e-12)
         total = math.fsum(ws)
         assert lay.weight_sum[g] == pytest.approx(total, rel=1e-12)
         identity = (total * total - math.fsum(ws * ws)) / 2  # ((Σw)² − Σw²)/2
@@ -100,7 +99,7 @@ def test_compiled_and_numpy_layouts_agree(weighted, monkeypatch):
             assert np.array_equal(a.codes, b.codes) and np.array_equal(a.starts, b.starts)
             # the centres may differ in their last bits (sums in another order)
             assert np.allclose(a.x, b.x, rtol=0, atol=1e-6) and np.allclose(a.y, b.y, rtol=0, atol=1e-6)
-            for name in ("radius_max", "radius_sum", "radius_sq_sum", "pair_weight"):
+            for name in ("radius_max", "radius_sum", "pair_weight"):
                 assert np.allclose(getattr(a, name)(), getattr(b, name)(), rtol=1e-9, atol=1e-300), name
 
 

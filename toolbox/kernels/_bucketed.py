@@ -1,15 +1,17 @@
 """Compiled kernel: projected pair sums of many groups by bucketing instead of sorting.
 
 Along one direction, a group's projected values are dropped into B buckets spanning its radius:
-equal ones over a core of ± twice the group's RMS distance from its centre, holding three quarters
-of them, and coarser equal ones over the two tails beyond (a few remote points would otherwise
-stretch every bucket and leave the dense core in few of them). Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
-``W_b`` and weighted position sum ``S_b`` alone (``Σ_b S_b·W_<b − W_b·S_<b``). A pair inside
-one bucket contributes between 0 and the bucket's spread of values times the pair weight
-(exactly the spread when the bucket holds two points); that uncertainty is reported. Buckets
-carrying too much of it (a dense cluster) are resolved, heaviest first, until what is left fits
-the budget: split again into sub-buckets over their own range, whose crowded ones are sorted,
-so their pairs are summed exactly. Bucket index and sums use the same float projection, and the
+equal ones over a core of ± twice the group's mean distance from its centre, holding three
+quarters of them, and coarser equal ones over the two tails beyond (a few remote points would
+otherwise stretch every bucket and leave the dense core in few of them). B is about half the
+group's points, at most a cap that grows as the uncertainty budget shrinks (:func:`bucket_cap`).
+Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
+``W_b`` and weighted position sum ``S_b`` alone (``Σ_b S_b·W_<b − W_b·S_<b``). The pairs inside
+one bucket contribute between 0 and the bucket's spread of values times ``W_b²/4`` (exactly
+the spread times the pair weight when the bucket holds two points); that uncertainty is
+reported. Buckets carrying too much of it (a dense cluster) are resolved, heaviest first, until
+what is left fits the budget: split again into sub-buckets over their own range, whose crowded
+ones are sorted, so their pairs are summed exactly. Bucket index and sums use the same float projection, and the
 index is a monotone function of it (each of the three pieces is linear and clamped to its own
 buckets), so the ordering is exact.
 
@@ -23,6 +25,8 @@ direction, so the results differ only within the same guaranteed bounds).
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import njit, prange
 
@@ -30,6 +34,16 @@ __all__ = ["bucketed_group_sums"]
 
 #: most buckets per group and direction (crowded ones are split again, see _resolve)
 MAX_BUCKETS = 1 << 16
+#: fewest buckets a large group may be capped to, and the constant of bucket_cap
+MIN_CAP = 1 << 12
+CAP_SCALE = 280.0
+#: the uncertainty of a crowded bucket is at most its width times W_b² times this: points of
+#: weights w_i in [lo, hi] give Σ_{i<j} w_i w_j |p_i − p_j| ≤ (hi − lo)·W_A·W_B for some split
+#: of the bucket's weight W_b = W_A + W_B (the sum is convex in each p_i, so its largest value
+#: puts every point at lo or hi), and W_A·W_B ≤ W_b²/4. A hair above 1/4, so that rounding (of
+#: the products, and of sums over at most 64 Ki buckets: relative error below 1e-11) cannot
+#: take the reported uncertainty under the bound.
+_BOUND = 0.25 * (1 + 1e-9)
 #: point-directions per run of tasks sharing one scratch accumulator (a few hundred µs of work)
 RUN_POINTS = 1 << 16
 #: heaviest buckets picked one by one before a task sorts the rest by their uncertainty
@@ -68,22 +82,22 @@ def _sorted_pair_sum(p, w):
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _bucket_count(n):
-    """Buckets of a group of n points: about two points per bucket, 16 to MAX_BUCKETS."""
+def _bucket_count(n, cap):
+    """Buckets of a group of n points: about two points per bucket, 16 to ``cap``."""
     buckets = 16
-    while 2 * buckets < n and buckets < MAX_BUCKETS:
+    while 2 * buckets < n and buckets < cap:
         buckets *= 2
     return buckets
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _frame(n, radius, core):
+def _frame(n, radius, core, cap):
     """How a group of n points is bucketed: (buckets, radius, core, q, mid, tail and core scales).
 
     q coarse buckets per tail beyond ±core, mid dense ones between; tails only when they are
     wide, since a narrow one would scale its index by a huge factor.
     """
-    buckets = _bucket_count(n)
+    buckets = _bucket_count(n, cap)
     q = buckets // 8 if core < 0.5 * radius else 0  # buckets of each tail
     core = core if q > 0 else radius
     mid = buckets - 2 * q
@@ -117,7 +131,7 @@ def _clear(acc, buckets):
 
 
 @njit(cache=True, nogil=True)
-def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, acc):
+def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, cap, acc):
     """(exact part, remaining uncertainty, longest addition chain) of one group's projected
     pair sum on one direction.
 
@@ -126,7 +140,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, acc):
     """
     if n < 2 or radius <= 0.0:
         return 0.0, 0.0, 0.0
-    frame = _frame(n, radius, core)
+    frame = _frame(n, radius, core, cap)
     buckets = frame[0]
     # one row per bucket (weight, weighted position, pair weight, count, min, max): a point
     # touches one cache line, not six arrays
@@ -146,7 +160,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, acc):
         acc[b, 4] = min(acc[b, 4], p)
         acc[b, 5] = max(acc[b, 5], p)
     # one pass over the buckets: pairs in different buckets, pairs of two-point buckets, and
-    # the bound of the crowded ones (their pair weight is at most W_b²/2, without cancellation)
+    # the bound of the crowded ones (see _BOUND)
     exact = 0.0
     acc_w = 0.0
     acc_s = 0.0
@@ -164,7 +178,7 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, acc):
         width = max(acc[b, 5] - acc[b, 4], 0.0)
         pair, many = np.float64(k == 2.0), np.float64(k > 2.0)
         exact += (width * acc[b, 2]) * pair  # its one pair is exactly the width apart
-        uncertain += (width * 0.5 * wb * wb) * many
+        uncertain += (width * _BOUND * wb * wb) * many
         crowded += k * many
         most = max(most, k)
     # longest chain of additions behind any sum: a bucket's points, then the buckets twice
@@ -184,7 +198,7 @@ def _choose(acc, buckets, exact, uncertain, budget, cheap):
     spread = np.zeros(buckets)
     for b in range(buckets):
         if acc[b, 3] > 2.0:
-            spread[b] = (acc[b, 5] - acc[b, 4]) * 0.5 * acc[b, 0] * acc[b, 0]
+            spread[b] = (acc[b, 5] - acc[b, 4]) * _BOUND * acc[b, 0] * acc[b, 0]
     if cheap:
         return spread > 0.0
     # a few picks of the largest usually suffice: cheaper than sorting every bucket
@@ -225,7 +239,7 @@ def _resolve_chosen(x, y, w, weighted, start, n, c, s, frame, acc, chosen, exact
         else:
             offsets[b + 1] = offsets[b]
             if k > 2.0:
-                uncertain += (acc[b, 5] - acc[b, 4]) * 0.5 * acc[b, 0] * acc[b, 0]
+                uncertain += (acc[b, 5] - acc[b, 4]) * _BOUND * acc[b, 0] * acc[b, 0]
     fill = offsets[:-1].copy()
     pv = np.empty(offsets[-1])
     wv = np.empty(offsets[-1])
@@ -298,7 +312,7 @@ def _resolve(p, w):
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bounds):
+def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, cap, bounds):
     """Every (group, direction) task, in runs ``bounds[j]:bounds[j + 1]`` of consecutive tasks
     (groups major): each run is one parallel iteration with one scratch accumulator."""
     m = cos_t.size
@@ -309,19 +323,35 @@ def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, 
         first, last = bounds[j], bounds[j + 1]
         rows = 16
         for task in range(first, last):
-            rows = max(rows, _bucket_count(counts[groups[task // m]]))
+            rows = max(rows, _bucket_count(counts[groups[task // m]], cap))
         acc = np.empty((rows, 6))
         _clear(acc, rows)
         for task in range(first, last):
             g = groups[task // m]
             k = task % m
             e, u, c = _one_task(
-                x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget, acc
+                x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget, cap, acc
             )
             exact[task] = e
             uncertain[task] = u
             chain[task] = c
     return exact, uncertain, chain
+
+
+def bucket_cap(budget):
+    """Most buckets per task for an uncertainty ``budget``: fewer buckets are faster (16 Ki rows
+    stay in a core's L2 cache, 64 Ki do not) but leave more pairs sharing one.
+
+    A task's uncertainty falls as the square of its buckets, so the cap grows as 1/√budget:
+    ``CAP_SCALE / √budget`` rounded up to a power of two, between MIN_CAP and MAX_BUCKETS.
+    At tolerance 0.01 (budget 3e-4) that is 16 Ki, and a million points of a skewed cluster
+    (2 % of them ten times further out) leave about 1 % of the budget; from tolerance 1e-3
+    on every group may have the full 64 Ki.
+    """
+    cap = MIN_CAP
+    while cap < MAX_BUCKETS and cap * math.sqrt(budget) < CAP_SCALE:
+        cap *= 2
+    return cap
 
 
 def _runs(counts, m):
@@ -349,7 +379,7 @@ def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, b
     core = radius if core is None else core
     bounds = _runs(counts[groups], cos_t.size)
     exact, uncertain, chain = _all_tasks(
-        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bounds
+        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bucket_cap(budget), bounds
     )
     shape = (groups.size, cos_t.size)
     return (

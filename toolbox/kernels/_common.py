@@ -178,12 +178,11 @@ def _before(w: np.ndarray) -> np.ndarray:
 @dataclass(frozen=True)
 class GroupSums:
     """Per-group sums of a centred layout: Σ_{i<j} w_i w_j, the largest distance of a point from
-    the centre, Σ w_i r_i and Σ r_i² (``r`` those distances)."""
+    the centre and Σ w_i r_i (``r`` those distances)."""
 
     pair_weight: np.ndarray
     radius_max: np.ndarray
     radius_sum: np.ndarray
-    radius_sq_sum: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -236,16 +235,19 @@ class GroupLayout:
     def _build_compiled(cls, compiled, x, y, groups, n_groups, weights, centred, ordered) -> GroupLayout:
         """:meth:`build` with the compiled kernels: a counting sort, then two parallel passes
         that centre the groups and sum what the other kernels need per group."""
-        counts = np.bincount(groups, minlength=n_groups).astype(np.int64)
-        starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
         weighted = weights is not None
         w = weights if weighted else np.zeros(1)
         index = np.zeros(0)
-        if not ordered:
+        if ordered:
+            counts = np.array([x.size]) if n_groups == 1 else np.bincount(groups, minlength=n_groups)
+        else:
             codes = np.ascontiguousarray(groups, dtype=np.int64)
-            rec = compiled.group_records(codes, starts, x, y, w, weighted)
+            rec, counts = compiled.group_records(codes, n_groups, compiled.slices(), x, y, w, weighted)
             x, y, index = rec[:, 0], rec[:, 1], rec[:, -1]
             w = rec[:, 2] if weighted else w
+        counts = counts.astype(np.int64)
+        starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
+        if not ordered:
             groups = np.repeat(np.arange(n_groups, dtype=np.int64), counts)
         # pieces of at most PIECE points of one group, so that one large group is shared out too
         per_group = -(-counts // compiled.PIECE)
@@ -262,7 +264,7 @@ class GroupLayout:
             np.empty(n if moved else 0, dtype=np.int64),
         )
         pieces = (piece_group, piece_start, piece_stop)
-        weight_sum, pair_weight, radius_max, radius_sum, radius_sq_sum = compiled.centre_pieces(
+        weight_sum, pair_weight, radius_max, radius_sum = compiled.centre_pieces(
             x, y, w, weighted, index, centred, *pieces, n_groups, out
         )
         xs, ys = out[0], out[1]
@@ -271,7 +273,7 @@ class GroupLayout:
         if not weighted:
             weight_sum = counts.astype(np.float64)
         wpt = np.broadcast_to(1.0, xs.shape) if weights is None else weights
-        sums = GroupSums(pair_weight, radius_max, radius_sum, radius_sq_sum) if centred else None
+        sums = GroupSums(pair_weight, radius_max, radius_sum) if centred else None
         return cls(n_groups, order, groups, counts, starts, xs, ys, weights, wpt, weight_sum, sums)
 
     def unsort(self, values: np.ndarray) -> np.ndarray:
@@ -373,12 +375,6 @@ class GroupLayout:
     def radius_sum(self) -> np.ndarray:
         """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
         return self._radius_sum if self.sums is None else self.sums.radius_sum
-
-    def radius_sq_sum(self) -> np.ndarray:
-        """Σ r_i² per group (unweighted), r_i the distance of point i from its group's centre."""
-        if self.sums is not None:
-            return self.sums.radius_sq_sum
-        return np.bincount(self.codes, self.radius * self.radius, self.n_groups)
 
 
 def weights_of_others(groups, n_groups: int, weights) -> tuple[np.ndarray, np.ndarray]:

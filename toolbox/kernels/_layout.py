@@ -11,38 +11,60 @@ of points keeps every thread busy.
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["group_records", "centre_pieces", "PIECE"]
+__all__ = ["group_records", "centre_pieces", "slices", "PIECE"]
 
 #: points per piece of the parallel passes (two arrays of it stay in a core's cache)
 PIECE = 1 << 16
 
 
-@njit(cache=True, nogil=True)
-def group_records(codes, starts, x, y, w, weighted):
-    """Stable counting sort by group: one record (x, y, [w,] original index) per point, in
-    group order.
+def slices() -> int:
+    """Slices of the input for :func:`group_records`: a few per thread, handed out one at a time
+    as threads free up (a thread that lost its core holds up one slice, not half the input)."""
+    return 4 * numba.get_num_threads()
 
-    ``starts`` is where each group begins (exclusive cumulative counts). One record per point
-    keeps the scattered writes to one stream per group (a thousand groups then fit a core's
-    cache), several times faster than gathering each array through an index. The index is
-    stored as a float64, exact below 2**53.
+
+@njit(parallel=True, cache=True, nogil=True)
+def group_records(codes, n_groups, parts, x, y, w, weighted):
+    """Stable counting sort by group: one record (x, y, [w,] original index) per point, in
+    group order, and the count of every group.
+
+    The input is cut into ``parts`` consecutive slices, counted and scattered in parallel:
+    each slice writes its points of a group after those of the slices before it, so the order
+    within a group stays the input's. One record per point keeps the scattered writes to one
+    stream per group (a thousand groups then fit a core's cache), several times faster than
+    gathering each array through an index. The index is stored as a float64, exact below 2**53.
     """
-    fill = starts.copy()
-    rec = np.empty((codes.size, 4 if weighted else 3))
+    n = codes.size
+    bounds = np.linspace(0, n, parts + 1).astype(np.int64)
+    fill = np.zeros((parts, n_groups), dtype=np.int64)
+    for p in prange(parts):
+        for i in range(bounds[p], bounds[p + 1]):
+            fill[p, codes[i]] += 1
+    counts = np.zeros(n_groups, dtype=np.int64)
+    at = 0
+    for g in range(n_groups):  # where each slice's points of group g begin
+        for p in range(parts):
+            k = fill[p, g]
+            fill[p, g] = at
+            at += k
+            counts[g] += k
+    rec = np.empty((n, 4 if weighted else 3))
     last = rec.shape[1] - 1
-    for i in range(codes.size):
-        g = codes[i]
-        j = fill[g]
-        fill[g] = j + 1
-        rec[j, 0] = x[i]
-        rec[j, 1] = y[i]
-        if weighted:
-            rec[j, 2] = w[i]
-        rec[j, last] = i
-    return rec
+    for p in prange(parts):
+        for i in range(bounds[p], bounds[p + 1]):
+            g = codes[i]
+            j = fill[p, g]
+            fill[p, g] = j + 1
+            rec[j, 0] = x[i]
+            rec[j, 1] = y[i]
+            if weighted:
+                rec[j, 2] = w[i]
+            rec[j, last] = i
+    return rec, counts
 
 
 @njit(parallel=True, cache=True, nogil=True)
@@ -54,7 +76,7 @@ def centre_pieces(x, y, w, weighted, index, centred, piece_group, piece_start, p
     point's original index. ``out`` is (x, y, w, order): the coordinates are copied into it
     (``w`` and ``order`` only with an ``index`` and, for ``w``, weights), then centred in place.
     Returns, per group: Σw, Σ_{i<j} w_i w_j (as Σ_i w_i·(weight before i)), the largest
-    distance of a point from the centre, Σ w_i r_i and Σ r_i² (``r`` those distances). The mean
+    distance of a point from the centre and Σ w_i r_i (``r`` those distances). The mean
     is weighted unless the group's weights are all zero, and clamped into the group's range of
     values, so identical points centre to exact zeros. With ``centred`` False the coordinates
     are only copied (and the sums of distances are zeros).
@@ -132,13 +154,12 @@ def centre_pieces(x, y, w, weighted, index, centred, piece_group, piece_start, p
         mx[g] = min(max(mx[g], box[g, 0]), box[g, 1])
         my[g] = min(max(my[g], box[g, 2]), box[g, 3])
     # pass 2, per piece: subtract, distances from the centre and their sums
-    dist = np.zeros((pieces, 3))  # max r, Σ w r, Σ r²
+    dist = np.zeros((pieces, 2))  # max r, Σ w r
     for k in prange(pieces):
         g = piece_group[k]
         cx, cy = mx[g], my[g]
         top = 0.0
         swr = 0.0
-        srr = 0.0
         if not centred:
             continue
         for i in range(piece_start[k], piece_stop[k]):
@@ -146,18 +167,14 @@ def centre_pieces(x, y, w, weighted, index, centred, piece_group, piece_start, p
             yi = yo[i] - cy
             xo[i] = xi
             yo[i] = yi
-            rr = xi * xi + yi * yi
-            r = np.sqrt(rr)
+            r = np.sqrt(xi * xi + yi * yi)
             top = max(top, r)
             swr += (1.0 if not weighted else wo[i] if gathered else w[i]) * r
-            srr += rr
-        dist[k, 0], dist[k, 1], dist[k, 2] = top, swr, srr
+        dist[k, 0], dist[k, 1] = top, swr
     radius_max = np.zeros(n_groups)
     radius_sum = np.zeros(n_groups)
-    radius_sq_sum = np.zeros(n_groups)
     for k in range(pieces):
         g = piece_group[k]
         radius_max[g] = max(radius_max[g], dist[k, 0])
         radius_sum[g] += dist[k, 1]
-        radius_sq_sum[g] += dist[k, 2]
-    return weight_sum, pair_weight, radius_max, radius_sum, radius_sq_sum
+    return weight_sum, pair_weight, radius_max, radius_sum

@@ -240,23 +240,24 @@ def _fine_sums(lay, groups, cos_t, sin_t, budget, tick, threads):
     return out
 
 
-#: a group's core of dense buckets spans ± this many RMS distances from its centre
+#: a group's core of dense buckets spans ± this many mean distances from its centre
 _CORE_SPAN = 2.0
 
 
 def _bucket_core(lay, radius):
     """Half-width of each group's densely bucketed core (its radius: equal buckets throughout).
 
-    Groups small enough to get under one bucket per point have a core of ±2 RMS distances from
-    their centre: remote members then no longer stretch the buckets of the dense middle, and
-    most (group, direction) tasks fit their budget without a second pass. Larger groups keep
+    Groups small enough to get under one bucket per point have a core of ±2 mean (weighted)
+    distances from their centre: remote members then no longer stretch the buckets of the dense
+    middle, and most (group, direction) tasks fit their budget without a second pass. The mean
+    distance, unlike the RMS one, is hardly moved by a few remote members. Larger groups keep
     equal buckets (their buckets are narrow already).
     """
-    small = lay.counts < 2 * _compiled().MAX_BUCKETS
+    small = (lay.counts < 2 * _compiled().MAX_BUCKETS) & (lay.weight_sum > 0)
     if not small.any():
         return radius
-    rms = np.sqrt(lay.radius_sq_sum() / np.maximum(lay.counts, 1))
-    return np.where(small, np.minimum(_CORE_SPAN * rms, radius), radius)
+    mean = np.divide(lay.radius_sum(), lay.weight_sum, out=radius.copy(), where=small)
+    return np.where(small, np.minimum(_CORE_SPAN * mean, radius), radius)
 
 
 def _projected_rows(cx, cy, cw, valid, n, cos_t, sin_t) -> np.ndarray:
