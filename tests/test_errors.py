@@ -16,6 +16,7 @@ import os
 import re
 import shutil
 import signal
+import sys
 import time
 from pathlib import Path
 
@@ -641,6 +642,35 @@ def test_interrupt_turned_into_another_error_by_a_library_still_stops_the_run(ho
             raise ImportError("pd_parser.c could not import module pandas") from None
 
     monkeypatch.setattr(write_module, "csv_text", converting)
+    target = tmp_path / "out.csv"
+    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
+    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
+    assert not target.exists()
+
+
+def test_interrupt_inside_a_callback_from_compiled_code_is_one_line(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
+    # numba compiling a kernel calls back into Python (llvmlite's object cache); a Ctrl-C there
+    # cannot be raised, and Python printed it as "Exception ignored on calling ctypes callback
+    # function" with a traceback before the run's own line. Simulated with libc's qsort.
+    import ctypes
+
+    from toolbox.layers import write as write_module
+
+    real = write_module.csv_text
+    compare = ctypes.CFUNCTYPE(ctypes.c_int, ctypes.POINTER(ctypes.c_int), ctypes.POINTER(ctypes.c_int))
+
+    def interrupted(a, b):
+        os.kill(os.getpid(), signal.SIGINT)
+        time.sleep(1)  # the handler raises here, inside the callback
+        return 0
+
+    def through_a_callback(*args, **kwargs):
+        values = (ctypes.c_int * 2)(2, 1)
+        ctypes.CDLL(None).qsort(values, 2, ctypes.sizeof(ctypes.c_int), compare(interrupted))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(write_module, "csv_text", through_a_callback)
+    monkeypatch.setattr(sys, "unraisablehook", sys.__unraisablehook__)  # Python's, not pytest's
     target = tmp_path / "out.csv"
     assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
     assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"

@@ -215,3 +215,18 @@ def test_a_shapefile_says_that_it_cuts_the_notes(world, tmp_path, capsys):
     assert any("254 bytes" in line and "'note'" in line and "GeoPackage" in line for line in lines)
     far = pyogrio.read_dataframe(out)
     assert far.loc[far["place"] == "world", "note"].str.startswith("Geodesic sums").all()
+
+
+def test_streamed_cross_spread_sinks_only_the_world_rows(world):
+    # --batch-rows: the towns are compared on common bins of their own, as in memory
+    path, towns = world
+    with pytest.warns(PartialResultWarning, match="'world'"):
+        table = toolbox.cross_spread(path, group_by="place", batch_rows=5000)
+    bad = (table["from_group"] == "world") | (table["to_group"] == "world")
+    assert table.loc[bad, "note"].str.contains("too many for exact geodesic sums").all()
+    assert table.loc[bad, "total_dist"].isna().all()
+    assert table.loc[~bad, "note"].isna().all() and len(table.loc[~bad]) == 4
+    (a_lon, a_lat), (b_lon, b_lat) = towns["Alderholt"], towns["Brackwater"]
+    truth = geod_cross(a_lon, a_lat, b_lon, b_lat).sum()  # brute force, pyproj.Geod
+    row = table[(table["from_group"] == "Alderholt") & (table["to_group"] == "Brackwater")].iloc[0]
+    assert row["total_lo"] <= truth <= row["total_hi"] and row["rel_bound"] <= 0.01

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import contextlib
 import signal
+import sys
 import threading
 from collections.abc import Iterator
 
@@ -29,6 +30,22 @@ _SEEN = [False]
 def _on_sigint(signum, frame) -> None:
     _SEEN[0] = True
     raise KeyboardInterrupt
+
+
+def _quiet_unraisable(previous):
+    """An unraisable-exception hook that stays silent about a remembered Ctrl-C.
+
+    A Ctrl-C that lands in a callback from compiled code (numba compiling a kernel calls back
+    into Python) cannot be raised there; Python prints it as "Exception ignored ..." with a
+    traceback. It is remembered already and reported once, as the interruption.
+    """
+
+    def hook(unraisable) -> None:
+        if isinstance(unraisable.exc_value, KeyboardInterrupt) and _SEEN[0]:
+            return
+        previous(unraisable)
+
+    return hook
 
 
 def is_ours(handler) -> bool:
@@ -58,8 +75,11 @@ def watching() -> Iterator[None]:
         yield
         return
     signal.signal(signal.SIGINT, _on_sigint)
+    previous = sys.unraisablehook
+    sys.unraisablehook = _quiet_unraisable(previous)
     try:
         yield
     finally:
         signal.signal(signal.SIGINT, signal.default_int_handler)
+        sys.unraisablehook = previous
         _SEEN[0] = False

@@ -584,6 +584,34 @@ def _shifted(points: estimate.Points, into=None, *, then: Callable, offset: int,
     return then(replace(points, groups=points.groups + offset, n_groups=n_groups), into=into)
 
 
+def _only(points: estimate.Points, into=None, *, then: Callable, code_of: np.ndarray):
+    """``then`` of the points of some groups, recoded: group ``g`` becomes ``code_of[g]``
+    (points of groups with code -1 are left out)."""
+    codes = code_of[points.groups]
+    keep = codes >= 0
+    w = None if points.weights is None else points.weights[keep]
+    shift = None if points.shift is None else points.shift[keep]
+    mine = replace(
+        points, x=points.x[keep], y=points.y[keep], groups=codes[keep], n_groups=int(code_of.max()) + 1,
+        weights=w, shift=shift,
+    )  # fmt: skip
+    return then(mine, into=into)
+
+
+def _survey_of(survey: Survey, groups: np.ndarray) -> Survey:
+    """The survey of ``groups`` alone, coded 0, 1, … in their order."""
+    return replace(
+        survey,
+        n_groups=int(groups.size),
+        count=survey.count[groups],
+        weight_sum=survey.weight_sum[groups],
+        pair_weight=survey.pair_weight[groups],
+        sums=survey.sums[groups],
+        lo=survey.lo[groups],
+        hi=survey.hi[groups],
+    )
+
+
 def cross_sums(
     ready: Prepared, other: Prepared | None = None, *, tolerance: float, method: str
 ) -> estimate.CrossPairSums:
@@ -605,7 +633,11 @@ def cross_sums(
         mine = recode_survey(r.survey, offset + _all(r.survey), total)
         survey = mine if survey is None else survey.merge(mine)
 
-    def one_pass(accumulate):
+    def one_pass(accumulate, only=None):
+        if only is not None:  # the points of some groups only, recoded 0, 1, …
+            code_of = np.full(total, -1, dtype=np.int64)
+            code_of[only] = np.arange(only.size)
+            accumulate = functools.partial(_only, then=accumulate, code_of=code_of)
         result = None
         for r, offset in zip(layers, offsets, strict=False):
             then = functools.partial(_shifted, then=accumulate, offset=offset, n_groups=total)
@@ -618,16 +650,27 @@ def cross_sums(
         points = cross_state.gathered_points(kept, survey, ready.setup)
         return estimate.cross_sums(points, tolerance=tolerance, method=method)
 
-    cross = cross_state.cross_plan(survey, tolerance=tolerance, method=method)
-    if cross.gather:  # exact sums asked for, or too few points for a common frame
-        return in_memory(np.arange(total))
-    columns = cross_state.table(total)
-    if cross.note:
-        columns.note[...] = cross.note
-    else:
-        est, lo, hi, bound, directions = cross_state.cross_finish(one_pass(cross.plan.accumulate), cross)
-        columns.put(..., est, lo, hi, bound, exact=False, directions=directions)
-        again = cross_state.groups_to_gather(survey, bound, tolerance)
+    def binned(groups):
+        """Entries among ``groups`` (all of them, or those left when some are refused) on
+        common bins; entries over the tolerance then from their groups' points."""
+        sub = survey if groups is None else _survey_of(survey, groups)
+        cross = cross_state.cross_plan(sub, tolerance=tolerance, method=method)
+        names = np.arange(total) if groups is None else groups
+        block = np.ix_(names, names)
+        if cross.gather:  # too few points for a common frame: from their points
+            r = in_memory(names)
+            for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
+                getattr(columns, name)[block] = getattr(r, name)[block]
+            return
+        if cross.note:
+            columns.note[block] = cross.note
+            return
+        state = one_pass(cross.plan.accumulate, groups)
+        est, lo, hi, bound, directions = cross_state.cross_finish(state, cross)
+        for name, value in zip(("total", "lower", "upper", "rel_bound"), (est, lo, hi, bound), strict=True):
+            getattr(columns, name)[block] = value
+        columns.exact[block], columns.directions[block] = False, directions
+        again = names[cross_state.groups_to_gather(sub, bound, tolerance)]
         if again.size:  # groups packed into the same bins: their entries from their points
             r = in_memory(again)
             pick = np.ix_(again, again)
@@ -637,5 +680,22 @@ def cross_sums(
                 block = target[pick]
                 block[keep] = getattr(r, name)[pick][keep]
                 target[pick] = block
+
+    cross = cross_state.cross_plan(survey, tolerance=tolerance, method=method)
+    if cross.gather:  # exact sums asked for, or too few points for a common frame
+        return in_memory(np.arange(total))
+    columns = cross_state.table(total)
     within = pair_sums(ready, tolerance=tolerance, method=method) if other is None else None
+    if not cross.note:
+        binned(None)
+    elif within is None:
+        columns.note[...] = cross.note
+    else:  # too wide together: groups refused on their own sink only their own rows
+        refused = np.flatnonzero(np.asarray(within.note, dtype=bool))
+        columns.note[...] = cross.note
+        for g in refused:
+            columns.note[g, :] = columns.note[:, g] = within.note[g]
+        kept = np.setdiff1d(np.arange(total), refused)
+        if refused.size and kept.size:
+            binned(kept)
     return cross_state.cross_result(survey, columns.columns(), within)
