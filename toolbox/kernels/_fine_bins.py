@@ -284,14 +284,17 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, budget, acc, seen, coun
     tails = (inv_low, shifts[0], inv_high, shifts[1])
     value = counts[0, :1]  # scratch now: one float, read as its bits in _tail
     bits = value.view(np.int64)
-    for i in range(start, start + n):
-        p = x[i] * c + y[i] * s
-        j = _bin(p, lo, hi, q, mid, s_core, tails, value, bits)
-        if weighted:
+    if weighted:  # two loops: a branch inside the hottest one costs 7 %
+        for i in range(start, start + n):
+            p = x[i] * c + y[i] * s
+            j = _bin(p, lo, hi, q, mid, s_core, tails, value, bits)
             acc[j, 0] += w[i]
             acc[j, 1] += w[i] * p
             seen[j] += 1
-        else:
+    else:
+        for i in range(start, start + n):
+            p = x[i] * c + y[i] * s
+            j = _bin(p, lo, hi, q, mid, s_core, tails, value, bits)
             acc[j, 0] += 1.0
             acc[j, 1] += p
     # a value's bin may be off by the rounding of its index arithmetic, a few u·reach: a
