@@ -26,8 +26,8 @@ _fine_bins = pytest.importorskip("toolbox.kernels._fine_bins", reason="the narro
 
 TOLERANCE = 1e-6
 BUDGET = bin_budget(TOLERANCE, projection_directions(TOLERANCE))
-#: the fewest points the tight route gives narrow bins (a few thousand)
-N = -(-_fine_bins.bins_for_budget(BUDGET) // pairs._FINE_SPARSEST) + 800
+#: a few thousand points: as many as a weighted group needs for narrow bins at this budget
+N = int(_fine_bins.bins_for_budget(BUDGET) * pairs._FINE_WEIGHTED) + 800
 
 
 def cdist_total(x, y, w=None) -> float:
@@ -78,7 +78,9 @@ def tiny_clusters(n, seed):
 
 @pytest.fixture
 def kernel_calls(monkeypatch):
-    """The (exact part, uncertainty) of every call of the narrow-bin kernel."""
+    """The (exact part, uncertainty) of every call of the narrow-bin kernel, which unweighted
+    groups of N points get too (normally they are sorted below 2 points per bin)."""
+    monkeypatch.setattr(pairs, "_FINE_UNWEIGHTED", pairs._FINE_WEIGHTED)
     calls = []
     real = _fine_bins.fine_bin_sums
 
@@ -119,6 +121,15 @@ def test_interval_holds_where_bins_are_crowded(layout, weighted, kernel_calls):
     r = pair_distance_sum(x, y, w, tolerance=TOLERANCE, method="projection")
     check_total(r, cdist_total(x, y, w))  # scipy cdist
     assert len(kernel_calls) == 1
+
+
+def test_small_unweighted_groups_are_sorted(monkeypatch):
+    # below two points per bin numpy's sort is faster: no call of the kernel
+    called = []
+    monkeypatch.setattr(_fine_bins, "fine_bin_sums", lambda *args: called.append(args))
+    x, y, _ = skewed(N, seed=77)
+    r = pair_distance_sum(x, y, tolerance=TOLERANCE, method="projection")
+    assert not called and r.rel_bound <= TOLERANCE
 
 
 def one_direction(x, y, w, angle, budget):

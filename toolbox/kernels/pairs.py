@@ -113,11 +113,13 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
     exact_part, uncertain = np.zeros(lay.n_groups), np.zeros(lay.n_groups)
     chain = 2.0 * lay.counts  # cumulative sums over a row of n_g (the sorting route)
     compiled = _compiled() is not None
-    # Tight budgets: enough narrow bins that none needs resolving, for groups with at least an
-    # eighth as many points as bins; smaller ones are sorted (unweighted) or bucketed and resolved.
+    # Tight budgets: enough narrow bins that none needs resolving, for groups large enough
+    # (_FINE_WEIGHTED, _FINE_UNWEIGHTED); smaller ones are sorted (unweighted) or bucketed and
+    # resolved.
     tight = budget < 1e-7
     bins = _fine_bins().bins_for_budget(budget) if compiled and tight else 0
-    fine = groups[lay.counts[groups] * _FINE_SPARSEST >= bins] if bins else groups[:0]
+    least = bins * (_FINE_UNWEIGHTED if lay.w is None else _FINE_WEIGHTED)
+    fine = groups[lay.counts[groups] >= least] if bins else groups[:0]
     rest = groups[~np.isin(groups, fine)]
     binned = rest if compiled and not (tight and lay.w is None) else rest[:0]
     if fine.size or binned.size:
@@ -147,8 +149,12 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
     return Raw(exact_part[groups], m, absolute=slack, uncertain=uncertain[groups])
 
 
-#: groups with fewer points per narrow bin than 1/this are sorted or bucketed instead
-_FINE_SPARSEST = 8
+#: narrow bins from this many points per bin on: weighted groups, whose other route buckets and
+#: resolves, from an eighth; unweighted ones from two, below which numpy's sort of padded rows
+#: is faster (each task's core search and sweep, and its 1 MiB of bins out of cache, cost as
+#: much as ~50,000 points; measured break-even about 100,000 points at 2¹⁶ bins)
+_FINE_WEIGHTED = 1 / 8
+_FINE_UNWEIGHTED = 2
 
 #: from this many directions on, points are first put in a space-filling-curve order
 _LOCALITY_DIRECTIONS = 64
