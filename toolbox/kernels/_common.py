@@ -97,7 +97,11 @@ def check_points(x, y, weights):
         raise ParameterError(
             f"x and y must be 1-D arrays of the same length. Got shapes {x.shape} and {y.shape}."
         )
-    bad = ~(np.isfinite(x) & np.isfinite(y))
+    # a finite sum means finite terms (NaN and inf carry through a sum); only a sum that is
+    # not finite (bad values, or an overflow) needs the per-point check
+    with np.errstate(over="ignore", invalid="ignore"):
+        finite = np.isfinite(x.sum() + y.sum())
+    bad = np.zeros(0, dtype=bool) if finite else ~(np.isfinite(x) & np.isfinite(y))
     if bad.any():
         raise ParameterError(
             f"{int(bad.sum())} point(s) have NaN or infinite coordinates (first at index "
@@ -109,7 +113,9 @@ def check_points(x, y, weights):
             raise ParameterError(
                 f"weights must have one value per point. Got shape {weights.shape} for {x.shape[0]} points."
             )
-        bad = ~np.isfinite(weights) | (weights < 0)
+        with np.errstate(over="ignore", invalid="ignore"):  # NaN fails both tests
+            fine = weights.size == 0 or (weights.min() >= 0 and np.isfinite(weights.sum()))
+        bad = np.zeros(0, dtype=bool) if fine else ~np.isfinite(weights) | (weights < 0)
         if bad.any():
             raise ParameterError(
                 f"{int(bad.sum())} weight(s) are negative, NaN or infinite (first at index "
@@ -263,7 +269,11 @@ class GroupLayout:
             np.empty(n if moved and weighted else 0),
             np.empty(n if moved else 0, dtype=np.int64),
         )
-        pieces = (piece_group, piece_start, piece_stop)
+        # consecutive pieces in blocks of about PIECE points, one hand-out to a thread each
+        size = piece_stop - piece_start
+        block = (np.cumsum(size) - size) // compiled.PIECE
+        blocks = np.concatenate([[0], np.flatnonzero(np.diff(block)) + 1, [block.size]]).astype(np.int64)
+        pieces = (piece_group, piece_start, piece_stop, blocks)
         weight_sum, pair_weight, radius_max, radius_sum = compiled.centre_pieces(
             x, y, w, weighted, index, centred, *pieces, n_groups, out
         )
