@@ -247,7 +247,8 @@ class GroupLayout:
         if ordered:
             counts = np.array([x.size]) if n_groups == 1 else np.bincount(groups, minlength=n_groups)
         else:
-            codes = np.ascontiguousarray(groups, dtype=np.int64)
+            codes = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
+            x, y, w = _read_only(x), _read_only(y), _read_only(w)
             rec, counts = compiled.group_records(codes, n_groups, compiled.slices(), x, y, w, weighted)
             x, y, index = rec[:, 0], rec[:, 1], rec[:, -1]
             w = rec[:, 2] if weighted else w
@@ -275,7 +276,7 @@ class GroupLayout:
         blocks = np.concatenate([[0], np.flatnonzero(np.diff(block)) + 1, [block.size]]).astype(np.int64)
         pieces = (piece_group, piece_start, piece_stop, blocks)
         weight_sum, pair_weight, radius_max, radius_sum = compiled.centre_pieces(
-            x, y, w, weighted, index, centred, *pieces, n_groups, out
+            _read_only(x), _read_only(y), _read_only(w), weighted, _read_only(index), centred, *pieces, n_groups, out
         )
         xs, ys = out[0], out[1]
         order = out[3] if moved else None
@@ -385,6 +386,17 @@ class GroupLayout:
     def radius_sum(self) -> np.ndarray:
         """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
         return self._radius_sum if self.sums is None else self.sums.radius_sum
+
+
+def _read_only(values: np.ndarray) -> np.ndarray:
+    """A read-only view (no copy). numba compiles one version of a kernel per argument type,
+    and whether an array is writable is part of its type: layers read from Arrow buffers give
+    read-only arrays, numpy's arithmetic writable ones. Passing every input read-only keeps
+    one version per kernel, the one ``toolbox.precompile`` caches, instead of compiling
+    another on a user's first run of a new kind of input."""
+    view = values.view()
+    view.flags.writeable = False
+    return view
 
 
 def weights_of_others(groups, n_groups: int, weights) -> tuple[np.ndarray, np.ndarray]:
