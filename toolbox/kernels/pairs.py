@@ -114,11 +114,11 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
     chain = 2.0 * lay.counts  # cumulative sums over a row of n_g (the sorting route)
     compiled = _compiled() is not None
     # Tight budgets: enough narrow bins that none needs resolving, for groups large enough
-    # (_FINE_WEIGHTED, _FINE_UNWEIGHTED); smaller ones are sorted (unweighted) or bucketed and
-    # resolved.
+    # (_FINE_WEIGHTED, _FINE_UNWEIGHTED); smaller ones are sorted (unweighted, below 1e-7) or
+    # bucketed and resolved.
     tight = budget < 1e-7
-    bins = _fine_bins().bins_for_budget(budget) if compiled and tight else 0
-    least = bins * (_FINE_UNWEIGHTED if lay.w is None else _FINE_WEIGHTED)
+    bins = _fine_bins().bins_for_budget(budget) if compiled and budget < _FINE_BUDGET else 0
+    least = bins * (_FINE_WEIGHTED if tight and lay.w is not None else _FINE_UNWEIGHTED)
     fine = groups[lay.counts[groups] >= least] if bins else groups[:0]
     rest = groups[~np.isin(groups, fine)]
     binned = rest if compiled and not (tight and lay.w is None) else rest[:0]
@@ -149,10 +149,14 @@ def projected_pair_raw(lay, groups, m, budget, tick, threads) -> Raw:
     return Raw(exact_part[groups], m, absolute=slack, uncertain=uncertain[groups])
 
 
-#: narrow bins from this many points per bin on: weighted groups, whose other route buckets and
-#: resolves, from an eighth; unweighted ones from two, below which numpy's sort of padded rows
-#: is faster (each task's core search and sweep, and its 1 MiB of bins out of cache, cost as
-#: much as ~50,000 points; measured break-even about 100,000 points at 2¹⁶ bins)
+#: narrow bins below this budget (tolerances up to about 1.5e-5): at 1e-5, 1,000,000 points take
+#: 0.14-0.17x the time of the buckets, which resolve many of theirs
+_FINE_BUDGET = 2e-7
+#: narrow bins from this many points per bin on. Two: below, numpy's sort of padded rows (and,
+#: at 1e-5, the buckets) are faster: each task's core search and sweep, and its 1 MiB of bins
+#: out of cache, cost as much as ~50,000 points (measured break-even about 100,000 points at
+#: 2¹⁶ bins, 30,000-100,000 at 2¹⁵). Weighted groups below 1e-7, whose other route buckets and
+#: resolves, from an eighth.
 _FINE_WEIGHTED = 1 / 8
 _FINE_UNWEIGHTED = 2
 
