@@ -19,6 +19,8 @@ import math
 import numpy as np
 from numba import njit, prange
 
+from ._bucketed import _clear  # the same six columns: weight, Σwp, Σw², count, min, max
+
 __all__ = ["add_segments", "new_windows", "EMPTY"]
 
 #: exponent of a window that holds no value yet
@@ -73,13 +75,7 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
     a, b = _index(lo, e), _index(hi, e)
     new_o = a - (bins - (b - a + 1)) // 2
     old = window.copy()
-    for j in range(bins):
-        window[j, 0] = 0.0
-        window[j, 1] = 0.0
-        window[j, 2] = 0.0
-        window[j, 3] = 0.0
-        window[j, 4] = np.inf
-        window[j, 5] = -np.inf
+    _clear(window, bins)
     for j in range(bins):
         if old[j, 3] == 0.0:
             continue
