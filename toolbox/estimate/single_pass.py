@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..kernels import UNIT_ROUNDOFF, Raw, check_points, costs
-from ..kernels._common import compiled_module, directions_unit_vectors
+from ..kernels._common import by_group, compiled_module, directions_unit_vectors
 from .interval import bin_budget, check_method, interval, projection_directions
 from .points import Points
 from .results import GroupPairSums
@@ -73,6 +73,15 @@ def _grow(values: np.ndarray, size: int, fill) -> np.ndarray:
     if values.size >= size:
         return values
     return np.concatenate([values, np.full(size - values.size, fill, dtype=values.dtype)])
+
+
+def _in_group_order(x, y, w, groups, n_groups: int):
+    """Points sorted by group: x, y, w (or None), codes, the count of every group, the groups
+    present and where each present group's points start (and the last one ends)."""
+    x, y, w, counts, _ = by_group(groups, n_groups, x, y, w)
+    present = np.flatnonzero(counts)
+    starts = np.concatenate([[0], np.cumsum(counts[present])]).astype(np.int64)
+    return x, y, w, np.repeat(present, counts[present]), counts, present, starts
 
 
 @dataclass
@@ -123,12 +132,7 @@ class OnePass:
         """Add a batch of points; ``groups`` are codes below ``n_groups`` (which may grow)."""
         x, y, w = check_points(x, y, w)  # a NaN would fall in no window
         self._grow_groups(n_groups)
-        codes = np.ascontiguousarray(groups, dtype=np.int64)
-        weighted = w is not None
-        x, y, w, g, counts = self._kernel.by_group(x, y, w if weighted else np.zeros(1), weighted, codes, n_groups)
-        w = w if weighted else None
-        present = np.flatnonzero(counts)
-        starts = np.concatenate([[0], np.cumsum(counts[present])]).astype(np.int64)
+        x, y, w, g, counts, present, starts = _in_group_order(x, y, w, groups, n_groups)
         self._survey(x, y, w, g, present, counts, starts)
         promoted = np.flatnonzero((self.slot < 0) & ~self.dense & (self.count > self.gather))
         moved = self._promote(promoted)
@@ -182,13 +186,10 @@ class OnePass:
         self.used = used
         if not self.kept:
             return None
-        x, y, w, g = moved = self._take_kept(groups)
-        if x.size:
-            order = np.argsort(g, kind="stable")
-            counts = np.bincount(g[order], minlength=self.n_groups)
-            present = np.flatnonzero(counts)
-            starts = np.concatenate([[0], np.cumsum(counts[present])]).astype(np.int64)
-            self._bin(x[order], y[order], None if w is None else w[order], starts, self.slot[present])
+        moved = self._take_kept(groups)
+        if moved[0].size:
+            x, y, w, _, _, present, starts = _in_group_order(*moved, self.n_groups)
+            self._bin(x, y, w, starts, self.slot[present])
         return moved
 
     def _too_dense(self, groups: np.ndarray) -> np.ndarray:
@@ -245,8 +246,7 @@ class OnePass:
         return np.concatenate(x), np.concatenate(y), weights, np.concatenate(g)
 
     def _bin(self, x, y, w, starts, slots) -> None:
-        weighted = w is not None
-        x, y = np.ascontiguousarray(x), np.ascontiguousarray(y)
+        weighted = w is not None  # x, y, w: columns of by_group's records, read in place
         for arena in np.unique(slots[slots >= 0] // ARENA_WINDOWS):
             cells, expo, origin = self.arenas[arena]
             mine = np.where(slots // ARENA_WINDOWS == arena, slots % ARENA_WINDOWS, -1)

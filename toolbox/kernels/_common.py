@@ -247,11 +247,8 @@ class GroupLayout:
         if ordered:
             counts = np.array([x.size]) if n_groups == 1 else np.bincount(groups, minlength=n_groups)
         else:
-            codes = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
-            x, y, w = _read_only(x), _read_only(y), _read_only(w)
-            rec, counts = compiled.group_records(codes, n_groups, compiled.slices(), x, y, w, weighted)
-            x, y, index = rec[:, 0], rec[:, 1], rec[:, -1]
-            w = rec[:, 2] if weighted else w
+            x, y, sorted_w, counts, index = by_group(groups, n_groups, x, y, weights, compiled)
+            w = sorted_w if weighted else w
         counts = counts.astype(np.int64)
         starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
         if not ordered:
@@ -386,6 +383,21 @@ class GroupLayout:
     def radius_sum(self) -> np.ndarray:
         """Σ w_i r_i per group, r_i the distance of point i from its group's centre."""
         return self._radius_sum if self.sums is None else self.sums.radius_sum
+
+
+def by_group(groups, n_groups: int, x, y, weights=None, compiled=None):
+    """Points in group order by a stable counting sort (compiled, ``kernels/_layout.py``).
+
+    Returns x, y, the weights (None when unweighted), the count of every group and every
+    point's original index (as float64, exact below 2**53); the arrays are columns of one
+    record per point.
+    """
+    compiled = compiled or compiled_module("_layout")
+    weighted = weights is not None
+    codes = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
+    w = _read_only(weights) if weighted else np.zeros(1)
+    rec, counts = compiled.group_records(codes, n_groups, compiled.slices(), _read_only(x), _read_only(y), w, weighted)
+    return rec[:, 0], rec[:, 1], rec[:, 2] if weighted else None, counts, rec[:, -1]
 
 
 def _read_only(values: np.ndarray) -> np.ndarray:

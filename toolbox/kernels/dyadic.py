@@ -205,29 +205,3 @@ def window_sums(cells, slots, roundoff):
         uncertain[k, d] = u
     return exact, uncertain
 
-
-@njit(cache=True, nogil=True)
-def by_group(x, y, w, weighted, groups, n_groups):
-    """Points ordered by group code (a stable counting sort, one pass to count and one to
-    place): x, y, weights (ones' placeholder when unweighted), codes, and the count per group."""
-    counts = np.zeros(n_groups, dtype=np.int64)
-    for i in range(groups.size):
-        counts[groups[i]] += 1
-    place = np.empty(n_groups, dtype=np.int64)
-    total = 0
-    for g in range(n_groups):
-        place[g] = total
-        total += counts[g]
-    xs, ys = np.empty(x.size), np.empty(x.size)
-    ws = np.empty(x.size if weighted else 1)
-    gs = np.empty(x.size, dtype=np.int64)
-    for i in range(groups.size):
-        g = groups[i]
-        k = place[g]
-        place[g] = k + 1
-        xs[k] = x[i]
-        ys[k] = y[i]
-        gs[k] = g
-        if weighted:
-            ws[k] = w[i]
-    return xs, ys, ws, gs, counts
