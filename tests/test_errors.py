@@ -607,6 +607,18 @@ def test_interrupt_just_after_the_rename_says_the_output_was_written(homes_gpkg,
     assert target.is_file()
 
 
+def _assert_interrupted_while_writing(stand_in, homes_gpkg, tmp_path, monkeypatch, capfd):
+    """group-spread with ``stand_in`` in place of the CSV writer's text step (where a Ctrl-C is
+    simulated): exit 130, one line, nothing written."""
+    from toolbox.layers import write as write_module
+
+    monkeypatch.setattr(write_module, "csv_text", stand_in)
+    target = tmp_path / "out.csv"
+    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
+    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
+    assert not target.exists()
+
+
 def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
     # a compiled library that clears the KeyboardInterrupt while it loads (pandas' modules did,
     # about 1 run in 20) must not let the run go on to write its output
@@ -622,18 +634,12 @@ def test_interrupt_swallowed_by_a_library_still_stops_the_run(homes_gpkg, tmp_pa
             pass  # ... which clears it and carries on
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(write_module, "csv_text", swallowing)
-    target = tmp_path / "out.csv"
-    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
-    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
-    assert not target.exists()
+    _assert_interrupted_while_writing(swallowing, homes_gpkg, tmp_path, monkeypatch, capfd)
 
 
 def test_interrupt_turned_into_another_error_by_a_library_still_stops_the_run(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
     # pandas' compiled start-up turned a Ctrl-C into "ImportError: pd_parser.c could not import
     # module pandas", which the run reported as an unexpected failure (exit 1)
-    from toolbox.layers import write as write_module
-
     def converting(*args, **kwargs):
         try:
             os.kill(os.getpid(), signal.SIGINT)
@@ -641,11 +647,7 @@ def test_interrupt_turned_into_another_error_by_a_library_still_stops_the_run(ho
         except KeyboardInterrupt:
             raise ImportError("pd_parser.c could not import module pandas") from None
 
-    monkeypatch.setattr(write_module, "csv_text", converting)
-    target = tmp_path / "out.csv"
-    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
-    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
-    assert not target.exists()
+    _assert_interrupted_while_writing(converting, homes_gpkg, tmp_path, monkeypatch, capfd)
 
 
 def test_interrupt_inside_a_callback_from_compiled_code_is_one_line(homes_gpkg, tmp_path, monkeypatch, capfd, ctrl_c_handled):
@@ -669,12 +671,8 @@ def test_interrupt_inside_a_callback_from_compiled_code_is_one_line(homes_gpkg, 
         ctypes.CDLL(None).qsort(values, 2, ctypes.sizeof(ctypes.c_int), compare(interrupted))
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(write_module, "csv_text", through_a_callback)
     monkeypatch.setattr(sys, "unraisablehook", sys.__unraisablehook__)  # Python's, not pytest's
-    target = tmp_path / "out.csv"
-    assert main(["group-spread", *homes_gpkg.args, "--output", str(target), "--quiet"]) == 130
-    assert capfd.readouterr().err == "pairspread: interrupted; no output was written.\n"
-    assert not target.exists()
+    _assert_interrupted_while_writing(through_a_callback, homes_gpkg, tmp_path, monkeypatch, capfd)
 
 
 def test_api_docstring_states_python_types():
