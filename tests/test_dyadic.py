@@ -23,21 +23,23 @@ def _projected_pair_sum(p, w):
     return float(np.sum(w * p * (2 * before + w - w.sum())))
 
 
-def _windows(batches, bins=64, m=3):
+def _windows(batches, bins=64, m=3, weighted=True):
     """One group's windows after adding ``batches`` of (x, y, w) one after the other."""
     theta = np.arange(m) * np.pi / m
-    cells, expo, origin = dyadic.new_windows(1, m, bins)
+    cells, expo, origin = dyadic.new_windows(1, m, bins, weighted)
     for x, y, w in batches:
         starts = np.array([0, x.size], dtype=np.int64)
-        dyadic.add_segments(x, y, w, True, starts, np.array([0]), cells, expo, origin, np.cos(theta), np.sin(theta))
-    return cells, expo, np.cos(theta), np.sin(theta)
+        w = w if weighted else np.zeros(1)
+        dyadic.add_segments(x, y, w, weighted, starts, np.array([0]), cells, expo, origin, np.cos(theta), np.sin(theta))
+    return cells, expo, origin, np.cos(theta), np.sin(theta)
 
 
+@pytest.mark.parametrize("weighted", [True, False])
 @pytest.mark.parametrize(
     "layout",
     ["spread", "growing", "far_apart", "one_value", "near_zero"],
 )
-def test_windows_hold_the_exact_projected_sum(layout):
+def test_windows_hold_the_exact_projected_sum(layout, weighted):
     rng = np.random.default_rng(5)
     if layout == "spread":  # UTM-like metres, batches from the same cloud
         xy = [rng.normal((500_000, 6_120_000), 300, (400, 2)) for _ in range(5)]
@@ -50,28 +52,37 @@ def test_windows_hold_the_exact_projected_sum(layout):
     else:  # zero and values near the smallest normal float, then ordinary ones
         xy = [np.zeros((10, 2)), np.full((10, 2), 1e-300), rng.normal(0, 1, (100, 2))]
     batches = [(v[:, 0].copy(), v[:, 1].copy(), rng.uniform(0.5, 3, len(v))) for v in xy]
-    cells, expo, cos_t, sin_t = _windows(batches)
+    cells, expo, origin, cos_t, sin_t = _windows(batches, weighted=weighted)
     x, y, w = (np.concatenate(c) for c in zip(*batches, strict=True))
-    W, S, Q, C, lo, hi = np.moveaxis(cells[0], -1, 0)
-    exact, uncertain = _bin_sums(W, S, Q, C, lo, hi)
+    w = w if weighted else np.ones(x.size)
+    exact, uncertain, fullest = dyadic.window_sums(cells, expo, np.array([0]), UNIT_ROUNDOFF)
     for d in range(cos_t.size):
-        truth = _projected_pair_sum(x * cos_t[d] + y * sin_t[d], w)
+        p = x * cos_t[d] + y * sin_t[d]
+        truth = _projected_pair_sum(p, w)
         slack = 1e-9 * max(abs(truth), 1e-300) + 1e-12 * np.sum(w) ** 2 * np.abs(np.r_[x, y]).max()
-        assert exact[d] - slack <= truth <= exact[d] + uncertain[d] + slack, (layout, d)
-        assert C[d].sum() == x.size  # every point in one bin
-    # the compiled finishing sums repeat the state's (up to the order of additions)
-    e2, u2 = dyadic.window_sums(cells, np.array([0]), UNIT_ROUNDOFF)
-    np.testing.assert_allclose(e2[0], exact, rtol=1e-9, atol=1e-9 * np.abs(exact).max() + 1e-300)
-    np.testing.assert_allclose(u2[0], uncertain, rtol=1e-9, atol=1e-9 * np.abs(uncertain).max() + 1e-300)
+        assert exact[0, d] - slack <= truth <= exact[0, d] + uncertain[0, d] + slack, (layout, d)
+        # brute force: every value sits in the bin its value names, floor(p·2^-e) − origin
+        bins = np.floor(np.ldexp(p, -int(expo[0, d]))).astype(np.int64) - origin[0, d]
+        held = np.bincount(bins, minlength=cells.shape[2])
+        count = cells[0, d, :, 3] if weighted else cells[0, d, :, 0]
+        np.testing.assert_array_equal(count, held)
+        assert fullest[0, d] == held.max()
+    if weighted:  # the exact part repeats the binned state's arithmetic (up to the order of additions)
+        W, S, Q, C = np.moveaxis(cells[0], -1, 0)
+        zero = np.zeros_like(W)
+        reference, _ = _bin_sums(W, S, Q, C, zero, zero)
+        np.testing.assert_allclose(exact[0], reference, rtol=1e-9, atol=1e-9 * np.abs(reference).max() + 1e-300)
 
 
 def test_bins_are_ordered_like_their_values():
     rng = np.random.default_rng(8)
     values = rng.normal(6_120_000, 2_000, 5_000)
     batches = [(values[a : a + 500], np.zeros(500), np.ones(500)) for a in range(0, 5_000, 500)]
-    cells, _, _, _ = _windows(batches, bins=256, m=1)
+    cells, expo, origin, _, _ = _windows(batches, bins=256, m=1)
+    width = np.ldexp(1.0, int(expo[0, 0]))
+    left = (origin[0, 0] + np.arange(256)) * width
     window = cells[0, 0]
     used = window[:, 3] > 0
-    lo, hi = window[used, 4], window[used, 5]
-    assert np.all(hi[:-1] < lo[1:])  # consecutive bins hold disjoint, increasing ranges
+    mean = window[used, 1] / window[used, 0]  # weights are 1: the mean value of each bin
+    assert np.all((left[used] <= mean) & (mean < left[used] + width))
     assert window[:, 3].sum() == values.size

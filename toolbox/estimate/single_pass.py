@@ -76,12 +76,12 @@ def _grow(values: np.ndarray, size: int, fill) -> np.ndarray:
 
 
 def _in_group_order(x, y, w, groups, n_groups: int):
-    """Points sorted by group: x, y, w (or None), codes, the count of every group, the groups
-    present and where each present group's points start (and the last one ends)."""
+    """Points sorted by group: x, y, w (or None), the count of every group, the groups present
+    and where each present group's points start (and the last one ends)."""
     x, y, w, counts, _ = by_group(groups, n_groups, x, y, w)
     present = np.flatnonzero(counts)
     starts = np.concatenate([[0], np.cumsum(counts[present])]).astype(np.int64)
-    return x, y, w, np.repeat(present, counts[present]), counts, present, starts
+    return x, y, w, counts, present, starts
 
 
 @dataclass
@@ -113,6 +113,7 @@ class OnePass:
     free: list = field(default_factory=list)  # windows handed back, emptied
     dense: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))  # kept for good
     over_budget: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
+    weighted: bool | None = None  # set by the first batch
 
     def __post_init__(self) -> None:
         if check_method(self.method, self.tolerance) == 0:
@@ -131,17 +132,24 @@ class OnePass:
     def add(self, x, y, w, groups, n_groups: int) -> None:
         """Add a batch of points; ``groups`` are codes below ``n_groups`` (which may grow)."""
         x, y, w = check_points(x, y, w)  # a NaN would fall in no window
+        if self.weighted is None:  # the windows' columns follow the first batch
+            self.weighted = w is not None
+        elif w is None and self.weighted:
+            w = np.ones(x.size)
+        elif w is not None and not self.weighted:
+            raise ValueError("weights came after unweighted batches: give every batch weights or none")
         self._grow_groups(n_groups)
-        x, y, w, g, counts, present, starts = _in_group_order(x, y, w, groups, n_groups)
-        self._survey(x, y, w, g, present, counts, starts)
+        x, y, w, counts, present, starts = _in_group_order(x, y, w, groups, n_groups)
+        self._survey(x, y, w, present, counts, starts)
         promoted = np.flatnonzero((self.slot < 0) & ~self.dense & (self.count > self.gather))
         moved = self._promote(promoted)
         self._bin(x, y, w, starts, self.slot[present])
         self._demote(self._too_dense(promoted), moved)
-        slots = self.slot[present]
-        left = np.repeat(slots < 0, counts[present])
-        if left.any():
-            self.kept.append((x[left], y[left], None if w is None else w[left], g[left]))
+        unbinned = self.slot[present] < 0
+        if unbinned.any():
+            left = np.repeat(unbinned, counts[present])
+            g = np.repeat(present[unbinned], counts[present[unbinned]])
+            self.kept.append((x[left], y[left], None if w is None else w[left], g))
             if sum(part[0].size for part in self.kept) > GATHER_POINTS:
                 raise TooLarge("too many points kept for exact sums")
 
@@ -153,18 +161,11 @@ class OnePass:
         self.slot = _grow(self.slot, n_groups, -1)
         self.dense = _grow(self.dense, n_groups, False)
 
-    def _survey(self, x, y, w, g, present, counts, starts) -> None:
-        n = self.n_groups
-        if w is None:
-            batch_w = counts.astype(np.float64)
-            pairs = np.zeros(n)
-            pairs[present] = counts[present] * (counts[present] - 1) / 2.0
-            size = np.bincount(g, np.abs(x) + np.abs(y), n)
-        else:
-            batch_w = np.bincount(g, w, n)
-            pairs = np.zeros(n)
-            pairs[present] = self._kernel.segment_pair_weight(w, starts)
-            size = np.bincount(g, w * (np.abs(x) + np.abs(y)), n)
+    def _survey(self, x, y, w, present, counts, starts) -> None:
+        weighted = w is not None
+        batch_w, pairs, size = np.zeros(self.n_groups), np.zeros(self.n_groups), np.zeros(self.n_groups)
+        sums = self._kernel.segment_sums(x, y, w if weighted else np.zeros(1), weighted, starts)
+        batch_w[present], pairs[present], size[present] = sums
         # pairs across batches: W_before·W_batch more pair weight, no cancellation
         self.pair_weight += pairs + self.weight_sum * batch_w
         self.weight_sum += batch_w
@@ -177,10 +178,10 @@ class OnePass:
             return None
         reused = min(len(self.free), groups.size)
         used = self.used + groups.size - reused
-        if used * self.m * self.bins * 48 > WINDOW_BYTES:
+        if used * self.m * self.bins * 8 * self._kernel.columns(self.weighted) > WINDOW_BYTES:
             raise TooLarge("the windows would take too much memory")
         while len(self.arenas) * ARENA_WINDOWS < used:  # new arenas; the old ones stay put
-            self.arenas.append(self._kernel.new_windows(ARENA_WINDOWS, self.m, self.bins))
+            self.arenas.append(self._kernel.new_windows(ARENA_WINDOWS, self.m, self.bins, self.weighted))
         self.slot[groups] = [*self.free[:reused], *range(self.used, used)]
         del self.free[:reused]
         self.used = used
@@ -188,7 +189,7 @@ class OnePass:
             return None
         moved = self._take_kept(groups)
         if moved[0].size:
-            x, y, w, _, _, present, starts = _in_group_order(*moved, self.n_groups)
+            x, y, w, _, present, starts = _in_group_order(*moved, self.n_groups)
             self._bin(x, y, w, starts, self.slot[present])
         return moved
 
@@ -197,18 +198,21 @@ class OnePass:
         ``DENSE_SHARE`` of their budget uncertain: clusters narrower than their bins."""
         if groups.size == 0:
             return groups
-        exact, uncertain = self._window_sums(groups)
+        exact, uncertain, _ = self._window_sums(groups)
         budget = bin_budget(self.tolerance, self.m)
         return groups[uncertain.sum(axis=1) > DENSE_SHARE * budget * exact.sum(axis=1)]
 
     def _window_sums(self, groups: np.ndarray):
-        """Exact part and in-bin uncertainty of the windows of ``groups``, (groups, directions)."""
-        exact, uncertain = np.zeros((groups.size, self.m)), np.zeros((groups.size, self.m))
+        """Exact part, in-bin uncertainty and fullest bin's count of the windows of ``groups``,
+        (groups, directions) each."""
+        out = tuple(np.zeros((groups.size, self.m)) for _ in range(3))
         arena, slot = np.divmod(self.slot[groups], ARENA_WINDOWS)
         for a in np.unique(arena):
             mine = arena == a
-            exact[mine], uncertain[mine] = self._kernel.window_sums(self.arenas[a][0], slot[mine], UNIT_ROUNDOFF)
-        return exact, uncertain
+            cells, expo, _ = self.arenas[a]
+            for part, values in zip(out, self._kernel.window_sums(cells, expo, slot[mine], UNIT_ROUNDOFF), strict=True):
+                part[mine] = values
+        return out
 
     def _demote(self, groups: np.ndarray, moved) -> None:
         """Keep the points of ``groups`` from now on (the windows' points come back from
@@ -255,11 +259,6 @@ class OnePass:
                 cells, expo, origin, self.cos_t, self.sin_t,
             )  # fmt: skip
 
-    def _window(self, group: int) -> np.ndarray:
-        """(directions, bins, 6) cells of a group's windows."""
-        arena, slot = divmod(int(self.slot[group]), ARENA_WINDOWS)
-        return self.arenas[arena][0][slot]
-
     def finish(self) -> GroupPairSums:
         """Every group's total and guaranteed interval (groups in code order).
 
@@ -280,13 +279,13 @@ class OnePass:
                 getattr(out, name)[kept] = getattr(r, name)[kept]
         budget = bin_budget(self.tolerance, self.m)
         live = np.flatnonzero((~kept) & (self.pair_weight > 0))
-        exact, uncertain = self._window_sums(live)
+        exact, uncertain, fullest = self._window_sums(live)
         exact, uncertain = exact.sum(axis=1), np.maximum(uncertain.sum(axis=1), 0.0)
         self.over_budget[live] = uncertain > budget * exact
         for k, group in enumerate(live):
             # rounding as in the planned state, with |p| ≤ |x| + |y| for the uncentred values,
             # and each value's own rounding (≤ 2u(|x| + |y|)) added per direction
-            chain = 2.0 * self.bins + 8.0 + float(self._window(group)[..., 3].max())
+            chain = 2.0 * self.bins + 8.0 + float(fullest[k].max())
             slack = self.m * (2 * chain + 8) * UNIT_ROUNDOFF * self.weight_sum[group] * self.size_sum[group]
             raw = Raw(float(exact[k]), self.m, absolute=slack, uncertain=float(uncertain[k]))
             out.put(group, *interval(raw), exact=False, directions=self.m)

@@ -5,11 +5,14 @@ multiples of ``2^e`` on the projection axis: bin ``k`` (absolute index) holds th
 with ``floor(p·2^-e) = k``. Multiplying by a power of two is exact in floating point, so a
 value's bin is exact, and the bins are ordered exactly as the values are. The window starts as
 fine as its first points allow and, when a later value falls outside it, is shifted or
-coarsened in place (``2^d`` neighbours merge: weights and sums add, extremes take the min and
-max), so one pass over the points needs no survey of their extent first.
+coarsened in place (``2^d`` neighbours merge: their sums add), so one pass over the points
+needs no survey of their extent first.
 
-Per bin: weight ``W``, weighted position ``S``, squared weights ``Q``, count ``C`` and the
-smallest and largest value: one row of six, so a point touches one cache line.
+Per bin, weighted windows hold four sums: weight ``W``, weighted position ``S``, squared
+weights ``Q`` and count ``C``; unweighted ones two, count and ``S`` (there ``W = Q = C``). Pairs
+in one bin lie less than its width apart, so no extremes are kept: a bin is 32 or 16 bytes, and
+a window of a thousand points per visit stays in cache (the windows of all groups are streamed
+from memory once per chunk: their size sets the pace).
 """
 
 from __future__ import annotations
@@ -19,17 +22,25 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from ._bucketed import _clear  # the same six columns: weight, Σwp, Σw², count, min, max
-
-__all__ = ["add_segments", "new_windows", "EMPTY"]
+__all__ = ["add_segments", "new_windows", "window_sums", "segment_sums", "columns", "EMPTY"]
 
 #: exponent of a window that holds no value yet
 EMPTY = -(1 << 20)
 
 
+def columns(weighted: bool) -> int:
+    """Sums per bin: W, S, Q, C when weighted; C, S when not."""
+    return 4 if weighted else 2
+
+
 @njit(cache=True, nogil=True, inline="always")
 def _index(p, e):
     return int(np.floor(math.ldexp(p, -e)))
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _count_column(window):
+    return window.shape[1] - 1 if window.shape[1] == 4 else 0
 
 
 @njit(cache=True, nogil=True)
@@ -52,11 +63,7 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
     """Shift or coarsen window (slot, d) until it holds every value in [lo, hi]."""
     bins = cells.shape[2]
     e = expo[slot, d]
-    if e == EMPTY:  # a window's memory is first touched here (fresh pages cost much)
-        window = cells[slot, d]
-        for j in range(bins):
-            window[j, 4] = np.inf
-            window[j, 5] = -np.inf
+    if e == EMPTY:
         e = _fit(lo, hi, bins)
         a, b = _index(lo, e), _index(hi, e)
         expo[slot, d] = e
@@ -67,28 +74,23 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
     if np.floor(math.ldexp(lo, -e)) >= o and np.floor(math.ldexp(hi, -e)) <= o + bins - 1:
         return
     window = cells[slot, d]
-    for j in range(bins):  # the values held so far join the new ones
-        if window[j, 3] > 0.0:
-            lo = min(lo, window[j, 4])
-            hi = max(hi, window[j, 5])
-    e = max(e, _fit(lo, hi, bins))
-    a, b = _index(lo, e), _index(hi, e)
+    count = _count_column(window)
+    for j in range(bins):  # the bins held so far join the new values, each by its left edge:
+        if window[j, count] > 0.0:  # at a coarser exponent a bin lies inside one new bin,
+            lo = min(lo, math.ldexp(float(o + j), e))  # the one its edge falls in
+            hi = max(hi, math.ldexp(float(o + j), e))
+    e_new = max(e, _fit(lo, hi, bins))
+    a, b = _index(lo, e_new), _index(hi, e_new)
     new_o = a - (bins - (b - a + 1)) // 2
     old = window.copy()
-    _clear(window, bins)
+    window[:, :] = 0.0
     for j in range(bins):
-        if old[j, 3] == 0.0:
+        if old[j, count] == 0.0:
             continue
-        # an old bin lies inside one new bin (both are aligned to powers of two): any of its
-        # values names it
-        t = _index(old[j, 4], e) - new_o
-        window[t, 0] += old[j, 0]
-        window[t, 1] += old[j, 1]
-        window[t, 2] += old[j, 2]
-        window[t, 3] += old[j, 3]
-        window[t, 4] = min(window[t, 4], old[j, 4])
-        window[t, 5] = max(window[t, 5], old[j, 5])
-    expo[slot, d] = e
+        t = _index(math.ldexp(float(o + j), e), e_new) - new_o
+        for c in range(window.shape[1]):
+            window[t, c] += old[j, c]
+    expo[slot, d] = e_new
     origin[slot, d] = new_o
 
 
@@ -96,7 +98,8 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
 def add_segments(x, y, w, weighted, starts, slots, cells, expo, origin, cos_t, sin_t):
     """Add the points of every segment ``[starts[s], starts[s+1])`` to the windows of slot
     ``slots[s]`` (segments with slot -1 are skipped). Segments of different slots run in
-    parallel; each slot appears in one segment only."""
+    parallel; each slot appears in one segment only. ``weighted`` must match the windows'
+    columns (:func:`columns`)."""
     m = cos_t.size
     for s in prange(slots.size):
         slot = slots[s]
@@ -134,74 +137,78 @@ def _add_while_inside(x, y, w, weighted, i, stop, window, e, o, c, sn):
         if not (0.0 <= k < bins):  # compared as a float: a far value would overflow an integer
             return i
         j = int(k)
-        wi = w[i] if weighted else 1.0
-        window[j, 0] += wi
-        window[j, 1] += wi * p
-        window[j, 2] += wi * wi
-        window[j, 3] += 1.0
-        if p < window[j, 4]:
-            window[j, 4] = p
-        if p > window[j, 5]:
-            window[j, 5] = p
+        if weighted:
+            wi = w[i]
+            window[j, 0] += wi
+            window[j, 1] += wi * p
+            window[j, 2] += wi * wi
+            window[j, 3] += 1.0
+        else:
+            window[j, 0] += 1.0
+            window[j, 1] += p
         i += 1
     return stop
 
 
-@njit(cache=True, nogil=True)
-def segment_pair_weight(w, starts):
-    """Σ_{i<j} w_i w_j of every segment, as Σ_i w_i·(weight before i): no cancellation."""
-    out = np.zeros(starts.size - 1)
-    for s in range(starts.size - 1):
-        before = 0.0
-        total = 0.0
+@njit(parallel=True, cache=True, nogil=True)
+def segment_sums(x, y, w, weighted, starts):
+    """Per segment ``[starts[s], starts[s+1])``: Σw, Σ_{i<j} w_i w_j (as Σ_i w_i·(weight
+    before i): no cancellation) and Σ w (|x| + |y|)."""
+    n = starts.size - 1
+    weight, pairs, size = np.zeros(n), np.zeros(n), np.zeros(n)
+    for s in prange(n):
+        before, total, extent = 0.0, 0.0, 0.0
         for i in range(starts[s], starts[s + 1]):
-            total += w[i] * before
-            before += w[i]
-        out[s] = total
-    return out
+            wi = w[i] if weighted else 1.0
+            total += wi * before
+            before += wi
+            extent += wi * (abs(x[i]) + abs(y[i]))
+        weight[s], pairs[s], size[s] = before, total, extent
+    return weight, pairs, size
 
 
-def new_windows(slots: int, directions: int, bins: int):
-    """Unopened windows: cells (slots, directions, bins, 6), exponents and origins."""
-    cells = np.zeros((slots, directions, bins, 6))  # extremes are set when a window opens
+def new_windows(slots: int, directions: int, bins: int, weighted: bool):
+    """Unopened windows: cells (slots, directions, bins, columns), exponents and origins.
+    The cells are zeros not yet touched: memory is mapped as windows fill."""
+    cells = np.zeros((slots, directions, bins, columns(weighted)))
     expo = np.full((slots, directions), EMPTY, dtype=np.int64)
     origin = np.zeros((slots, directions), dtype=np.int64)
     return cells, expo, origin
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def window_sums(cells, slots, roundoff):
-    """Exact part and in-bin uncertainty of every window of ``slots``, (slots, directions) each.
+def window_sums(cells, expo, slots, roundoff):
+    """Exact part, in-bin uncertainty and largest bin count of every window of ``slots``,
+    (slots, directions) each.
 
-    The arithmetic of ``toolbox.estimate.state._bin_sums`` in one pass over the bins: pairs in
-    different bins ``Σ_b S_b·W_<b − W_b·S_<b``; pairs in one bin between 0 and its spread of
-    values apart, with pair weight ``(W_b² − Q_b)/2`` up to ``2u·W_b²`` of rounding, at most
-    ``W_b²/2``; a bin of two points holds one pair exactly its spread apart.
+    Pairs in different bins: ``Σ_b S_b·W_<b − W_b·S_<b`` (the arithmetic of
+    ``toolbox.estimate.state._bin_sums``). Pairs in one bin lie between 0 and the bin's width
+    ``2^e`` apart, with pair weight ``(W_b² − Q_b)/2`` up to ``2u·W_b²`` of rounding, at most
+    ``W_b²/2``.
     """
     m, bins = cells.shape[1], cells.shape[2]
+    weighted = cells.shape[3] == 4
     exact = np.zeros((slots.size, m))
     uncertain = np.zeros((slots.size, m))
+    fullest = np.zeros((slots.size, m))
     for t in prange(slots.size * m):
         k, d = t // m, t % m
         window = cells[slots[k], d]
-        before_w, before_s, e, u = 0.0, 0.0, 0.0, 0.0
+        width = math.ldexp(1.0, expo[slots[k], d]) if expo[slots[k], d] != EMPTY else 0.0
+        before_w, before_s, e, u, top = 0.0, 0.0, 0.0, 0.0, 0.0
         for j in range(bins):
-            count = window[j, 3]
+            count = window[j, 3] if weighted else window[j, 0]
             if count == 0.0:
                 continue
+            top = max(top, count)
             wb, sb = window[j, 0], window[j, 1]
             e += sb * before_w - wb * before_s
             before_w += wb
             before_s += sb
             if count >= 2.0:
-                spread = window[j, 5] - window[j, 4]
-                pair = 0.5 * (wb * wb - window[j, 2])
-                slack = 2.0 * roundoff * wb * wb
-                pair_hi = min(0.5 * wb * wb, pair + slack)
-                pair_lo = max(pair - slack, 0.0) if count == 2.0 else 0.0
-                e += spread * pair_lo
-                u += spread * (pair_hi - pair_lo)
+                pair = 0.5 * (wb * wb - (window[j, 2] if weighted else wb))
+                u += width * min(0.5 * wb * wb, pair + 2.0 * roundoff * wb * wb)
         exact[k, d] = e
         uncertain[k, d] = u
-    return exact, uncertain
-
+        fullest[k, d] = top
+    return exact, uncertain, fullest
