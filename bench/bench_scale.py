@@ -40,6 +40,8 @@ TOLERANCE = 0.01
 BATCH_ROWS = 1 << 20
 RSS_TARGET = 3 * 2**30
 WALL_TARGET = 2.0
+#: producing the one pass's chunks (no binning) against the read floor: the rest is binning's
+DECODE_TARGET = 1.3
 #: groups checked against exact sums, and the size they are picked near (exact sums are O(n²))
 CHECKED_GROUPS = 4
 EXACT_SIZE = 20_000
@@ -71,6 +73,26 @@ def job_read(folder: str) -> dict:
     return {"wall": time.perf_counter() - start, "points": points, "checksum": checksum}
 
 
+def job_decode(folder: str) -> dict:
+    """Every chunk the one pass would bin (read, decoded, groups coded, joined), not binned:
+    what the streamed job costs beside its binning."""
+    import toolbox
+    from toolbox import estimate, streaming
+    from toolbox.batchkeys import KeyRegistry
+    from toolbox.layers.stream import layer_parts
+
+    start = time.perf_counter()
+    parts = layer_parts(folder)
+    setup = estimate.distance_setup(parts.crs, parts.label)
+    registry = KeyRegistry(("zone",))
+    chunks = streaming._coded_chunks(parts, ["zone", "residents"], ("zone",), "residents", setup, BATCH_ROWS, registry)
+    points = 0
+    for x, _, _, _, _ in chunks:
+        points += x.size
+    wall = time.perf_counter() - start
+    return {"wall": wall, "points": points, "groups": registry.count, "toolbox": toolbox.__file__}
+
+
 def _result_summary(table) -> dict:
     import numpy as np
 
@@ -95,7 +117,7 @@ def job_stream(folder: str) -> dict:
     table = toolbox.group_spread(
         folder, group_by="zone", weight="residents", tolerance=TOLERANCE, batch_rows=BATCH_ROWS
     )
-    return {"wall": time.perf_counter() - start, **_result_summary(table)}
+    return {"wall": time.perf_counter() - start, **_result_summary(table), "toolbox": toolbox.__file__}
 
 
 def job_planned(folder: str) -> dict:
@@ -174,13 +196,18 @@ def job_exact(folder: str, zones: list) -> dict:
     return {"totals": totals}
 
 
-JOBS = {"read": job_read, "stream": job_stream, "planned": job_planned, "dask": job_dask}
+JOBS = {"read": job_read, "decode": job_decode, "stream": job_stream, "planned": job_planned, "dask": job_dask}
 
 
-def run_job(name: str, folder: Path, *extra: str) -> dict:
-    """Run one job in a fresh interpreter; its JSON result plus its own peak RSS."""
+def run_job(name: str, folder: Path, *extra: str, tree: str | None = None) -> dict:
+    """Run one job in a fresh interpreter; its JSON result plus its own peak RSS.
+
+    With ``tree`` (a folder holding a ``toolbox`` package), that package is imported instead of
+    the installed one.
+    """
     command = [sys.executable, __file__, "--job", name, "--data", str(folder), *extra]
-    done = subprocess.run(command, capture_output=True, text=True, check=False)
+    env = None if tree is None else {**os.environ, "PYTHONPATH": os.path.abspath(tree)}
+    done = subprocess.run(command, capture_output=True, text=True, check=False, env=env)
     if done.returncode != 0:
         raise SystemExit(f"job {name} failed:\n{done.stderr[-3000:]}")
     return json.loads(done.stdout.strip().splitlines()[-1])
@@ -198,7 +225,9 @@ def _load() -> str:
     return " / ".join(f"{v:.2f}" for v in os.getloadavg())
 
 
-def report(args, folder, read: dict, stream: dict, planned: dict | None, dask: dict | None, exact: dict) -> list[str]:
+def report(
+    args, folder, read: dict, decode: dict, stream: dict, planned: dict | None, dask: dict | None, exact: dict
+) -> list[str]:
     import numpy as np
 
     lines = [
@@ -217,6 +246,9 @@ def report(args, folder, read: dict, stream: dict, planned: dict | None, dask: d
         "| job | wall | ratio to the read floor | peak RSS | target |",
         "| --- | --- | --- | --- | --- |",
         f"| read the coordinates with pyarrow (floor) | {read['wall']:.1f} s | 1× | {_gib(read['rss'])} | |",
+        f"| the one pass's chunks read, decoded and coded, not binned | {decode['wall']:.1f} s | "
+        f"{decode['wall'] / read['wall']:.2f}× | {_gib(decode['rss'])} | ≤ {DECODE_TARGET:g}×: "
+        f"{'met' if decode['wall'] <= DECODE_TARGET * read['wall'] else 'NOT met'} |",
         f"| group-spread, streamed in this process (one pass) | {stream['wall']:.1f} s | "
         f"{stream['wall'] / read['wall']:.2f}× | {_gib(stream['rss'])} | "
         f"≤ {WALL_TARGET:g}× and ≤ {_gib(RSS_TARGET)}: "
@@ -270,6 +302,25 @@ def report(args, folder, read: dict, stream: dict, planned: dict | None, dask: d
     return lines
 
 
+def compare(folder: Path, before: str, rounds: int) -> None:
+    """Before/after wall times of the chunks and the streamed job in one run: the trees take
+    turns round after round (a burst of other work slows both alike); the best of each is kept."""
+    jobs = {"read": [], "decode before": [], "decode after": [], "stream before": [], "stream after": []}
+    print(f"load average at the start: {_load()}", flush=True)
+    for _ in range(rounds):
+        jobs["read"].append(run_job("read", folder)["wall"])
+        for job in ("decode", "stream"):
+            for side, tree in (("before", before), ("after", None)):
+                result = run_job(job, folder, tree=tree)
+                jobs[f"{job} {side}"].append(result["wall"])
+                print(f"{job} {side}: {result['wall']:.2f} s ({result['toolbox']})", flush=True)
+    floor = min(jobs["read"])
+    print(f"load average at the end: {_load()}")
+    print("| job | best wall | / floor | all rounds |\n| --- | --- | --- | --- |")
+    for name, walls in jobs.items():
+        print(f"| {name} | {min(walls):.2f} s | {min(walls) / floor:.2f}× | {', '.join(f'{w:.2f}' for w in walls)} |")
+
+
 def write_section(lines: list[str], output: Path) -> None:
     """Put the section into ``output``, replacing an earlier one and keeping everything else."""
     text = output.read_text(encoding="utf-8") if output.exists() else ""
@@ -290,6 +341,10 @@ def main() -> None:
     parser.add_argument("--no-dask", action="store_true", help="skip the LocalCluster run")
     parser.add_argument("--no-planned", action="store_true", help="skip the run through the planned passes")
     parser.add_argument("--output", default=str(RESULTS), help="file for the section; - prints only")
+    parser.add_argument(
+        "--before", metavar="TREE", help="compare with the toolbox package in TREE (read, chunks, stream; printed only)"
+    )
+    parser.add_argument("--rounds", type=int, default=3, help="rounds of the comparison (best of each kept)")
     parser.add_argument("--job", choices=[*JOBS, "exact"], help=argparse.SUPPRESS)
     parser.add_argument("--data", help=argparse.SUPPRESS)
     parser.add_argument("--zones", help=argparse.SUPPRESS)
@@ -305,8 +360,13 @@ def main() -> None:
     args.load_start = _load()
     folder = scale_data.make_dataset(int(args.points), args.groups, args.files)
     print(f"data: {folder}", flush=True)
+    if args.before:
+        compare(folder, args.before, args.rounds)
+        return
     read = run_job("read", folder)
     print(f"read floor: {read['wall']:.1f} s, peak RSS {_gib(read['rss'])}", flush=True)
+    decode = run_job("decode", folder)
+    print(f"chunks, not binned: {decode['wall']:.1f} s, peak RSS {_gib(decode['rss'])}", flush=True)
     stream = run_job("stream", folder)
     print(f"streamed: {stream['wall']:.1f} s, peak RSS {_gib(stream['rss'])}", flush=True)
     planned = None
@@ -322,7 +382,7 @@ def main() -> None:
     near = sorted(range(len(sizes)), key=lambda i: abs(sizes[i] - EXACT_SIZE))[: CHECKED_GROUPS - 1]
     checked = sorted({min(range(len(sizes)), key=sizes.__getitem__), *near})
     exact = run_job("exact", folder, "--zones", json.dumps([stream["zone"][i] for i in checked]))
-    lines = report(args, folder, read, stream, planned, dask, exact)
+    lines = report(args, folder, read, decode, stream, planned, dask, exact)
     print("\n".join(lines))
     if args.output != "-":
         write_section(lines, Path(args.output))

@@ -420,8 +420,8 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
             yield decoded, registry.add(decoded.keys.keys)[decoded.local_codes]
 
     try:
-        for x, y, w, running in _chunks(coded(), max(batch_rows, ONE_PASS_CHUNK)):
-            sketch.add(x, y, w, running, registry.count)
+        for x, y, w, running, n_groups in _coded_chunks(parts, fields, group_by, weight, setup, batch_rows, registry):
+            sketch.add(x, y, w, running, n_groups)
     except TooLarge:
         return None
     if sketch.n_groups == 0:
@@ -456,6 +456,19 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
 #: points binned at a time in one pass: each group's windows then take many points per visit
 #: (they stay in cache), not a few scattered ones
 ONE_PASS_CHUNK = 1 << 22
+
+
+def _coded_chunks(parts: LayerParts, fields, group_by, weight, setup, batch_rows: int, registry: KeyRegistry):
+    """The layer's points in chunks of at least ``ONE_PASS_CHUNK`` points, groups coded by
+    ``registry`` as they come: ``(x, y, w, codes, n_groups)``, codes below ``n_groups``."""
+
+    def coded():
+        for batch in prefetched(parts.batches(fields, batch_rows)):
+            decoded = _decode(batch, group_by, weight, setup)
+            yield decoded, registry.add(decoded.keys.keys)[decoded.local_codes]
+
+    for x, y, w, running in _chunks(coded(), max(batch_rows, ONE_PASS_CHUNK)):
+        yield x, y, w, running, registry.count
 
 
 def _chunks(coded, size: int):
