@@ -82,6 +82,78 @@ def test_key_tables_merge_to_the_whole_layers_groups(homes):
         np.testing.assert_array_equal(order[codes], whole.codes[p])
 
 
+@pytest.mark.parametrize(
+    "values",
+    [
+        [3, 1, 3, 2, 1, 5, 4, 3] * 3,  # integers: looked up in a table by value
+        [3, 1, 3, 2 + 10**9, 1, 5, -(10**9), 3] * 3,  # too wide a range for a table: hashed
+        ["b", "a", None, "b", "c", None, "a", "d"] * 3,  # strings and nulls
+        [1.5, np.nan, 2.0, 1.5, 0.5, np.nan, 2.0, 3.0] * 3,  # floats and nulls
+    ],
+)
+def test_registry_codes_rows_as_the_whole_layers_groups(values):
+    frame = pd.DataFrame({"zone": values})
+    whole = grouping.group_features(frame, ["zone"])  # pandas' groupby: the reference
+    registry = batchkeys.KeyRegistry(("zone",))
+    pieces = np.split(np.random.default_rng(3).permutation(len(frame)), [1, 5, 11, 12])
+    batches = [frame.iloc[p].reset_index(drop=True) for p in pieces]
+    if isinstance(values[0], int):  # one batch of floats (an integer field read with nulls elsewhere)
+        batches[2] = batches[2].astype(float)
+    running = [registry.code(b) for b in batches]
+    table, order = registry.table()
+    pd.testing.assert_frame_equal(table.keys.astype(object), whole.keys.astype(object), check_dtype=False)
+    for codes, p in zip(running, pieces, strict=True):
+        np.testing.assert_array_equal(order[codes], whole.codes[p])
+
+
+def test_registry_codes_several_fields_and_categories_as_groupby(homes):
+    frame = homes[["zone", "tenure"]].copy()
+    frame.loc[frame.index[::7], "tenure"] = None
+    for fields, source in ((("zone", "tenure"), frame), (("zone",), frame.astype("category"))):
+        whole = grouping.group_features(frame, list(fields))  # pandas' groupby: the reference
+        registry = batchkeys.KeyRegistry(fields)
+        pieces = np.array_split(np.arange(len(frame)), 7)
+        running = [registry.code(source.iloc[p]) for p in pieces]
+        table, order = registry.table()
+        pd.testing.assert_frame_equal(
+            table.keys.astype(object), whole.keys.astype(object), check_column_type=False
+        )
+        for codes, p in zip(running, pieces, strict=True):
+            np.testing.assert_array_equal(order[codes], whole.codes[p])
+
+
+def test_one_pass_chunks_hold_every_point_once_in_order(homes_gpkg, homes, monkeypatch):
+    monkeypatch.setattr(streaming, "ONE_PASS_CHUNK", 40)  # batches of 33 split across chunks
+    parts = layer_parts(homes_gpkg.path, **homes_gpkg.kwargs)
+    registry = batchkeys.KeyRegistry(("zone",))
+    chunks = streaming._coded_chunks(parts, ["zone", "pop"], ("zone",), "pop", PLANAR, 33, registry)
+    got, buffers = [], []
+    for x, y, w, codes, n_groups in chunks:
+        assert codes.max() < n_groups
+        buffers.append(x)
+        got.append(np.column_stack([x, y, w, codes]))  # a copy: the chunk's arrays are reused
+    assert [len(c) for c in got[:-1]] == [40] * (len(got) - 1) and len(got) > 3
+    assert np.shares_memory(buffers[0], buffers[2]) and not np.shares_memory(buffers[0], buffers[1])
+    got = np.concatenate(got)
+    whole = grouping.group_features(homes, ["zone"])  # pandas' groupby: the reference
+    table, order = registry.table()
+    pd.testing.assert_frame_equal(table.keys.astype(object), whole.keys.astype(object), check_column_type=False)
+    np.testing.assert_array_equal(order[got[:, 3].astype(np.int64)], whole.codes)
+    np.testing.assert_array_equal(got[:, :2], _coordinates(gpd.read_file(homes_gpkg.path, **homes_gpkg.kwargs)))
+    np.testing.assert_array_equal(got[:, 2], homes["pop"].to_numpy(dtype=float))
+
+
+def test_one_pass_chunks_stop_their_reader_when_left_early(homes_gpkg):
+    import threading
+
+    parts = layer_parts(homes_gpkg.path, **homes_gpkg.kwargs)
+    registry = batchkeys.KeyRegistry(("zone",))
+    chunks = streaming._coded_chunks(parts, ["zone"], ("zone",), None, PLANAR, 5, registry)
+    next(chunks)  # the reader has filled the second buffer and waits for the first
+    chunks.close()
+    assert not [t for t in threading.enumerate() if t.name == "pairspread-reader"]
+
+
 @pytest.mark.parametrize("spill", [True, False])
 def test_prepared_batches_replay_the_layer(homes_gpkg, homes, spill):
     parts = layer_parts(homes_gpkg.path, **homes_gpkg.kwargs)

@@ -117,6 +117,10 @@ def _sorted_unique(fields: tuple[str, ...], stacked: pd.DataFrame) -> KeyTable:
     return KeyTable(fields, keys.reset_index(drop=True))
 
 
+#: widest range of integer keys looked up through a table (8 bytes an entry: 32 MiB at most)
+INTEGER_TABLE_SPAN = 1 << 22
+
+
 @dataclass
 class KeyRegistry:
     """Group keys met so far, numbered as they come (a running code per key).
@@ -134,6 +138,10 @@ class KeyRegistry:
     fields: tuple[str, ...]
     codes: dict = field(default_factory=dict)
     rows: list = field(default_factory=list)
+    #: running code of integer key ``_table_start + i`` at ``i`` (-1: not looked up yet), a
+    #: cache of ``codes`` for one integer field
+    _table: np.ndarray | None = field(default=None, init=False, repr=False)
+    _table_start: int = field(default=0, init=False, repr=False)
 
     @property
     def count(self) -> int:
@@ -157,6 +165,81 @@ class KeyRegistry:
         if new:
             self.rows.append(frame.iloc[new])
         return out
+
+    def code(self, attributes: pd.DataFrame) -> np.ndarray:
+        """Running codes of every row of ``attributes`` (which holds the key fields), new keys added.
+
+        The codes :meth:`add` gives the batch's groups, row by row. One key field costs a hash
+        pass over the rows (a table lookup for integers in a modest range) and Python work per
+        distinct key only, so that batches of many rows in few groups code cheaply.
+
+        Examples
+        --------
+        >>> registry = KeyRegistry(("zone",))
+        >>> registry.code(pd.DataFrame({"zone": [7, 5, 7]})).tolist()
+        [0, 1, 0]
+        >>> registry.code(pd.DataFrame({"zone": [5.0, None, 6.0]})).tolist()  # 5.0 is 5; a new null key is added last
+        [1, 3, 2]
+        """
+        rows = len(attributes)
+        if not self.fields:
+            return np.zeros(rows, dtype=np.int64)
+        if len(self.fields) > 1:
+            local = grouping.group_features(attributes, list(self.fields))
+            return self.add(local.keys)[local.codes]
+        column = attributes[self.fields[0]]
+        dtype = column.dtype
+        if rows and isinstance(dtype, np.dtype) and (dtype.kind == "i" or (dtype.kind == "u" and dtype.itemsize < 8)):
+            codes = self._looked_up(column.to_numpy())
+            if codes is not None:
+                return codes
+        local, uniques = pd.factorize(column)  # hashing; nulls of any kind get -1
+        return self._add_values(uniques, column, local)[local]
+
+    def _add_values(self, uniques: pd.Index, column: pd.Series, local: np.ndarray) -> np.ndarray:
+        """Running codes of the distinct non-null values ``uniques`` of one key field, then
+        (last, for the code -1 of nulls) that of the null key, if ``column`` has nulls."""
+        out = np.zeros(len(uniques) + 1, dtype=np.int64)
+        new, codes = [], self.codes
+        for i, value in enumerate(uniques.tolist()):
+            key = (value,)  # as _key makes it: the value itself (1 and 1.0 alike)
+            code = codes.get(key)
+            if code is None:
+                code = codes[key] = len(codes)
+                new.append(i)
+            out[i] = code
+        if new:
+            self.rows.append(pd.DataFrame({self.fields[0]: uniques[new]}))
+        nulls = np.flatnonzero(local < 0)
+        if nulls.size:
+            code = codes.get((None,))
+            if code is None:
+                code = codes[(None,)] = len(codes)
+                self.rows.append(column.iloc[nulls[:1]].to_frame(self.fields[0]).reset_index(drop=True))
+            out[-1] = code
+        return out
+
+    def _looked_up(self, values: np.ndarray) -> np.ndarray | None:
+        """Running codes of integer keys through a table indexed by value (None when their
+        range is too wide for one): a gather per row, the registry's dict only for new keys."""
+        lo, hi = int(values.min()), int(values.max())
+        table, start = self._table, self._table_start
+        if table is not None and start <= lo and hi < start + table.size:
+            codes = table[values - np.int64(start)]
+            if codes.min() >= 0:
+                return codes
+        if table is not None:
+            lo, hi = min(lo, start), max(hi, start + table.size - 1)
+        if hi - lo >= INTEGER_TABLE_SPAN:
+            return None
+        local, uniques = pd.factorize(values)
+        running = self._add_values(pd.Index(uniques), pd.Series(values), local)[:-1]
+        wider = np.full(hi - lo + 1, -1, dtype=np.int64)
+        if table is not None:
+            wider[start - lo : start - lo + table.size] = table
+        wider[uniques.astype(np.int64) - lo] = running
+        self._table, self._table_start = wider, lo
+        return running[local]
 
     def table(self) -> tuple[KeyTable, np.ndarray]:
         """The sorted key table, and the code in it of every running code."""

@@ -24,10 +24,13 @@ batch (and one read ahead), the key table and the state, whatever the layer's si
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import os
+import queue
 import shutil
 import tempfile
+import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
 
@@ -90,6 +93,39 @@ def _decode(batch: PointLayer, group_by, weight, setup) -> _Decoded:
     codes = local.codes if per_row is None else local.codes[per_row]
     w = weights if weights is None or per_row is None else weights[per_row]
     return _Decoded(x, y, w, codes, KeyTable(tuple(group_by), local.keys.reset_index(drop=True)))
+
+
+@dataclass
+class _Coded:
+    """One batch in the estimator's coordinates with the running group code of every point
+    (:meth:`KeyRegistry.code`) and the number of groups registered once it was coded."""
+
+    x: np.ndarray
+    y: np.ndarray
+    w: np.ndarray | None
+    codes: np.ndarray
+    n_groups: int
+
+
+def _coded(batch: PointLayer, group_by, weight, setup, registry: KeyRegistry) -> _Coded:
+    weights = grouping.feature_weights(batch.attributes, weight, batch.label)
+    x, y = setup.coordinates(batch.x, batch.y, batch.crs, batch.label)
+    codes = registry.code(batch.attributes)
+    if batch.feature.size != len(batch.attributes):  # MultiPoints: a feature's code for each point
+        codes = codes[batch.feature]
+        weights = None if weights is None else weights[batch.feature]
+    return _Coded(x, y, weights, codes, registry.count)
+
+
+def _coded_batches(parts: LayerParts, fields, group_by, weight, setup, batch_rows: int, registry: KeyRegistry):
+    """Every batch of the layer decoded and its groups coded by ``registry``, in order.
+
+    Meant to run in the reading thread (:func:`~toolbox.layers.stream.prefetched`), which then
+    reads, checks weights, transforms and codes while the caller computes; ``registry`` is then
+    that thread's until the batches are used up (the caller takes counts from each batch).
+    """
+    for batch in parts.batches(fields, batch_rows):
+        yield _coded(batch, group_by, weight, setup, registry)
 
 
 def _points(decoded: _Decoded, codes: np.ndarray, n_groups: int, setup) -> estimate.Points:
@@ -354,18 +390,16 @@ def prepare(
     store = None if folder is None else _Spill(folder, weight is not None)
     try:
         registry, survey = KeyRegistry(group_by), None
-        for batch in prefetched(parts.batches(fields, batch_rows)):
-            decoded = _decode(batch, group_by, weight, setup)
-            running = registry.add(decoded.keys.keys)[decoded.local_codes]
+        for coded in prefetched(_coded_batches(parts, fields, group_by, weight, setup, batch_rows, registry)):
+            running, count = coded.codes, coded.n_groups
             if store is not None:  # in group order: later passes then touch one group's bins at a time
-                small = np.uint16 if registry.count <= np.iinfo(np.uint16).max else np.int32
+                small = np.uint16 if count <= np.iinfo(np.uint16).max else np.int32
                 order = np.argsort(running.astype(small), kind="stable")  # 16 bits: a radix sort
-                w = None if decoded.w is None else decoded.w[order]
-                store.write(decoded.x[order], decoded.y[order], w, running[order])
-            mine = Survey.of(_points(decoded, running, registry.count, setup))
-            survey = (
-                mine if survey is None else recode_survey(survey, _all(survey), registry.count).merge(mine)
-            )
+                w = None if coded.w is None else coded.w[order]
+                store.write(coded.x[order], coded.y[order], w, running[order])
+            points = estimate.Points.build(coded.x, coded.y, running, count, coded.w, distance=setup)
+            mine = Survey.of(points)
+            survey = mine if survey is None else recode_survey(survey, _all(survey), count).merge(mine)
         if survey is None:
             raise _empty(parts)
         keys, order = registry.table()
@@ -415,13 +449,12 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
     registry, sketch = KeyRegistry(group_by), OnePass(tolerance=tolerance, method=method)
 
     def coded():
-        for batch in prefetched(parts.batches(fields, batch_rows)):
-            decoded = _decode(batch, group_by, weight, setup)
-            yield decoded, registry.add(decoded.keys.keys)[decoded.local_codes]
+        for batch in prefetched(_coded_batches(parts, fields, group_by, weight, setup, batch_rows, registry)):
+            yield batch, batch.codes
 
     try:
         for x, y, w, running, n_groups in _coded_chunks(parts, fields, group_by, weight, setup, batch_rows, registry):
-            sketch.add(x, y, w, running, n_groups)
+            sketch.add(x, y, w, running, n_groups)  # keeps no reference to the arrays: they are reused
     except TooLarge:
         return None
     if sketch.n_groups == 0:
@@ -459,34 +492,80 @@ ONE_PASS_CHUNK = 1 << 22
 
 
 def _coded_chunks(parts: LayerParts, fields, group_by, weight, setup, batch_rows: int, registry: KeyRegistry):
-    """The layer's points in chunks of at least ``ONE_PASS_CHUNK`` points, groups coded by
-    ``registry`` as they come: ``(x, y, w, codes, n_groups)``, codes below ``n_groups``."""
+    """The layer's points in chunks of ``max(batch_rows, ONE_PASS_CHUNK)`` points (the last may
+    be smaller), groups coded by ``registry`` as they come: ``(x, y, w, codes, n_groups)``,
+    codes below ``n_groups``.
 
-    def coded():
-        for batch in prefetched(parts.batches(fields, batch_rows)):
-            decoded = _decode(batch, group_by, weight, setup)
-            yield decoded, registry.add(decoded.keys.keys)[decoded.local_codes]
+    One background thread reads, decodes, codes and copies the batches into two chunk buffers in
+    turn: it fills one while the caller works on the other. A chunk's arrays are overwritten
+    once the caller asks for the next chunk, so the caller must not keep them. Reused buffers
+    are touched once, not a fresh 32 MiB array per column per chunk (the first touch of fresh
+    memory is what a concatenation costs on some machines).
+    """
+    size = max(batch_rows, ONE_PASS_CHUNK)
+    batches = _coded_batches(parts, fields, group_by, weight, setup, batch_rows, registry)
+    free: queue.Queue = queue.Queue()
+    stop = threading.Event()  # set when the caller stops: a fill waiting for a buffer ends
 
-    for x, y, w, running in _chunks(coded(), max(batch_rows, ONE_PASS_CHUNK)):
-        yield x, y, w, running, registry.count
+    def fill():
+        made, buffer, filled, n_groups = 0, None, 0, 0
+        for batch in batches:
+            start, n_groups = 0, batch.n_groups
+            while start < batch.codes.size:
+                if buffer is None:
+                    if made < 2:
+                        buffer, made = _Chunk(size, batch.w is not None), made + 1
+                    else:
+                        buffer = _returned(free, stop)
+                        if buffer is None:
+                            return
+                take = min(size - filled, batch.codes.size - start)
+                buffer.put(filled, batch, start, take)
+                filled, start = filled + take, start + take
+                if filled == size:
+                    yield buffer, filled, n_groups
+                    buffer, filled = None, 0
+        if filled:
+            yield buffer, filled, n_groups
+
+    held = None
+    with contextlib.closing(prefetched(fill(), depth=1, stop=stop)) as chunks:  # closed: reader stopped
+        for buffer, filled, n_groups in chunks:
+            if held is not None:  # asking for the next chunk says the caller is done with this one
+                free.put(held)
+            held = buffer
+            yield (*buffer.columns(filled), n_groups)
 
 
-def _chunks(coded, size: int):
-    """Decoded batches joined into chunks of at least ``size`` points: (x, y, w, codes)."""
-    waiting, held = [], 0
-    for decoded, running in coded:
-        waiting.append((decoded.x, decoded.y, decoded.w, running))
-        held += running.size
-        if held >= size:
-            yield _joined(waiting)
-            waiting, held = [], 0
-    if waiting:
-        yield _joined(waiting)
+class _Chunk:
+    """The columns of one chunk of points, filled batch by batch and reused."""
+
+    __slots__ = ("x", "y", "w", "codes")
+
+    def __init__(self, size: int, weighted: bool):
+        self.x, self.y = np.empty(size), np.empty(size)
+        self.w = np.empty(size) if weighted else None
+        self.codes = np.empty(size, dtype=np.int64)
+
+    def put(self, at: int, batch: _Coded, start: int, count: int) -> None:
+        """Copy ``count`` points of ``batch`` from ``start`` into the chunk at ``at``."""
+        for mine, theirs in ((self.x, batch.x), (self.y, batch.y), (self.w, batch.w), (self.codes, batch.codes)):
+            if mine is not None:
+                mine[at : at + count] = theirs[start : start + count]
+
+    def columns(self, filled: int) -> tuple:
+        """``(x, y, w, codes)`` of the first ``filled`` points (views, not copies)."""
+        return self.x[:filled], self.y[:filled], None if self.w is None else self.w[:filled], self.codes[:filled]
 
 
-def _joined(batches):
-    x, y, w, codes = (list(column) for column in zip(*batches, strict=True))
-    return np.concatenate(x), np.concatenate(y), None if w[0] is None else np.concatenate(w), np.concatenate(codes)
+def _returned(free: queue.Queue, stop: threading.Event):
+    """The next chunk the caller is done with, or None once the caller has stopped."""
+    while not stop.is_set():
+        try:
+            return free.get(timeout=0.1)
+        except queue.Empty:
+            continue
+    return None
 
 
 def _compiled_kernels() -> bool:

@@ -105,12 +105,16 @@ class LayerParts:
             yield from self.reader(part, fields, int(batch_rows))
 
 
-def prefetched(batches: Iterator[PointLayer], depth: int = 2) -> Iterator[PointLayer]:
+def prefetched(
+    batches: Iterator[PointLayer], depth: int = 2, stop: threading.Event | None = None
+) -> Iterator[PointLayer]:
     """The same batches, read ahead by a background thread while the caller works on the last.
 
     Reading (Parquet decoding, OGR) mostly runs without Python's lock, so on two cores it
     overlaps with the caller's numpy and pandas work. At most ``depth`` batches wait; an error
-    in the reader is raised in the caller, and stopping early stops the reader.
+    in the reader is raised in the caller, and stopping early (an error, Ctrl-C, a ``break``)
+    stops the reader. ``stop``, if given, is set when the caller stops, so that work inside
+    ``batches`` that waits on the caller can end too.
 
     Examples
     --------
@@ -118,23 +122,27 @@ def prefetched(batches: Iterator[PointLayer], depth: int = 2) -> Iterator[PointL
     [1, 2, 3]
     """
     waiting: queue.Queue = queue.Queue(maxsize=depth)
-    stop = threading.Event()
+    stop = threading.Event() if stop is None else stop
     done = object()
+
+    def hand(item) -> bool:
+        """Queue ``item`` for the caller; False once the caller has stopped (never blocks then)."""
+        while not stop.is_set():
+            try:
+                waiting.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
 
     def work():
         try:
             for batch in batches:
-                while not stop.is_set():
-                    try:
-                        waiting.put(batch, timeout=0.1)
-                        break
-                    except queue.Full:
-                        continue
-                if stop.is_set():
+                if not hand(batch):
                     return
-            waiting.put(done)
+            hand(done)
         except BaseException as exc:  # handed to the caller, who raises it
-            waiting.put(exc)
+            hand(exc)
 
     thread = threading.Thread(target=work, name="pairspread-reader", daemon=True)
     thread.start()
