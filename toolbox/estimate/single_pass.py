@@ -4,10 +4,10 @@ The passes of :mod:`.state` fix every group's bins from a survey of its extent, 
 read at least twice. Here each (group, direction) gets a window of power-of-two bins
 (:mod:`toolbox.kernels.dyadic`) that follows the values as they come: shifted or coarsened in
 place when a value falls outside it, so the bins end up as fine as the group's final extent
-allows, within a factor of four. Pairs in different bins are summed exactly and pairs in one
-bin bounded by its spread of values, through the same arithmetic as the binned state
-(``state._bin_sums``, here compiled, and :func:`.interval.interval`); a group of up to ``gather`` points keeps its
-points and gets the exact sums the in-memory path would give it.
+allows, within a factor of four. Pairs in different bins are summed exactly (the arithmetic
+of ``state._bin_sums``, here compiled) and pairs in one bin bounded by its width, through
+:func:`.interval.interval`; a group of up to ``gather`` points keeps its points and gets the
+exact sums the in-memory path would give it.
 
 Windows use about twice the bins the planned state gives a group, so that coarsening by a
 factor of two still leaves the bins the tolerance needs; when a group's in-bin uncertainty is
