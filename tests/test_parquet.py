@@ -182,3 +182,21 @@ def test_geodataframe_where_filters_in_memory(homes):
     expected = homes[(homes["zone"] == "ridge") | (homes["pop"] >= 8)]
     assert kept.index.tolist() == expected.index.tolist()
     assert homes.equals(before)  # the caller's frame is not modified
+
+
+def test_attributes_of_a_batch_are_what_pyarrow_converts():
+    from toolbox.layers.read import _arrow_attributes
+
+    table = pa.table(
+        {
+            "zone": pa.array([3, 1, 2], pa.int32()),
+            "pop": pa.array([1.5, 0.0, 2.0]),
+            "count": pa.array([1, None, 2], pa.int64()),
+            "name": pa.array(["a", None, "c"]),
+        }
+    )
+    for fields in (["zone", "pop"], ["zone", "count"], ["name", "pop"], []):
+        ours = _arrow_attributes(table, fields)
+        # pyarrow's own conversion is the reference
+        pd.testing.assert_frame_equal(ours, table.select(fields).to_pandas(), check_index_type=False)
+        assert len(ours) == table.num_rows

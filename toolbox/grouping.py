@@ -72,6 +72,11 @@ def feature_weights(attributes: pd.DataFrame, field: str | None, label: str) -> 
             "choose a numeric field."
         )
     values = column.to_numpy(dtype=np.float64, na_value=np.nan)
+    # a finite sum and a non-negative minimum mean every weight is fine (NaN fails both): two
+    # reductions; only a batch that fails them pays for naming the bad features
+    with np.errstate(over="ignore", invalid="ignore"):
+        if values.size == 0 or (values.min() >= 0 and np.isfinite(values.sum())):
+            return values
     problems = {
         "null or NaN": np.isnan(values),
         "infinite": np.isinf(values),

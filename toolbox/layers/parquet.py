@@ -35,6 +35,7 @@ import shapely
 from ..errors import InputError, spell
 from .read import (
     PointLayer,
+    _arrow_attributes,
     _check_fields,
     _finish,
     _first_line,
@@ -426,7 +427,7 @@ def points_of_table(table, layer: ArrowLayer, fields: Sequence[str] = ()) -> Poi
     """
     fields = list(dict.fromkeys(fields))
     geom = layer.geometry
-    attributes = table.select(fields).to_pandas()
+    attributes = _arrow_attributes(table, fields)
     column = table.column(geom.name)
     array = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
     if geom.encoding == "WKB":

@@ -265,6 +265,25 @@ def _check_fields(fields, available, label):
             raise InputError(f"{label} has no field {field!r}; {_suggest(field, available)}")
 
 
+def _arrow_attributes(table, fields: Sequence[str]) -> pd.DataFrame:
+    """The named fields of an Arrow table or record batch as a frame, as ``to_pandas`` gives them.
+
+    Integer and float columns without nulls (the usual group keys and weights) are copied
+    straight out of their buffers: pyarrow's pandas conversion costs several times the copy, a
+    price paid per batch when a layer is streamed. Anything else goes through ``to_pandas``.
+    """
+    import pyarrow as pa
+
+    columns = {}
+    for name in fields:
+        column = table.column(name)
+        kind = column.type
+        if column.null_count or not (pa.types.is_integer(kind) or pa.types.is_float32(kind) or pa.types.is_float64(kind)):
+            return table.select(list(fields)).to_pandas()
+        columns[name] = np.array(column)  # a writable copy, as to_pandas makes
+    return pd.DataFrame(columns, index=pd.RangeIndex(table.num_rows), columns=list(fields), copy=False)
+
+
 def _fixed_points(column) -> tuple[np.ndarray, np.ndarray] | None:
     """Coordinates straight from an Arrow WKB column when every value is a 2-D point.
 
@@ -291,8 +310,11 @@ def _fixed_points(column) -> tuple[np.ndarray, np.ndarray] | None:
     if not ((raw[:, 0] == 1).all() and (field("<u4", 1) == 1).all()):
         return None
     x, y = field("<f8", 5).copy(), field("<f8", 13).copy()
-    if (np.isnan(x) & np.isnan(y)).any():  # WKB writes POINT EMPTY as (NaN, NaN)
-        return None
+    # a finite sum means finite coordinates (two reductions, no masks); else (POINT EMPTY is
+    # written as NaN, NaN; a NaN or infinite coordinate) the general path names the features
+    with np.errstate(over="ignore", invalid="ignore"):
+        if not np.isfinite(x.sum() + y.sum()):
+            return None
     return x, y
 
 
@@ -300,7 +322,7 @@ def _points_from_wkb(attributes, column, crs, label) -> PointLayer:
     fixed = _fixed_points(column)
     if fixed is not None:
         x, y = fixed
-        return _finish(attributes, x, y, np.arange(x.size, dtype=np.int64), crs, label)
+        return _finish(attributes, x, y, np.arange(x.size, dtype=np.int64), crs, label, checked=True)
     geometry = shapely.from_wkb(column.to_numpy(zero_copy_only=False))
     return _points_from_geometry(attributes, geometry, crs, label)
 

@@ -33,6 +33,7 @@ import pyogrio
 from ..errors import ParameterError, spell
 from .read import (
     PointLayer,
+    _arrow_attributes,
     _check_fields,
     _is_frame,
     _open,
@@ -248,7 +249,7 @@ def _read_ogr(part, fields: list[str], batch_rows: int) -> Iterator[PointLayer]:
                 if batch.num_rows == 0:
                     continue
                 seen += batch.num_rows
-                attributes = batch.select(fields).to_pandas()
+                attributes = _arrow_attributes(batch, fields)
                 yield _points_from_wkb(attributes, batch.column(geom), meta["crs"], label)
     except (pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError) as exc:
         raise _reading_failed(exc, label, where, "pyogrio") from exc
