@@ -104,6 +104,10 @@ def test_registry_codes_rows_as_the_whole_layers_groups(values):
     pd.testing.assert_frame_equal(table.keys.astype(object), whole.keys.astype(object), check_dtype=False)
     for codes, p in zip(running, pieces, strict=True):
         np.testing.assert_array_equal(order[codes], whole.codes[p])
+    # the finished table codes any batch alike, and refuses a key it lacks
+    for batch, p in zip(batches, pieces, strict=True):
+        np.testing.assert_array_equal(table.codes(batch), whole.codes[p])
+    assert (table.codes(pd.DataFrame({"zone": [values[0], 10**12]})) == [whole.codes[0], -1]).all()
 
 
 def test_registry_codes_several_fields_and_categories_as_groupby(homes):

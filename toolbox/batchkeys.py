@@ -59,6 +59,10 @@ class KeyTable:
         if not self._lookup:
             rows = self.keys[list(self.fields)].to_numpy(dtype=object)
             self._lookup.update({_key(row): code for code, row in enumerate(rows)})
+        if len(self.fields) == 1:  # a hash pass over the rows, a lookup per distinct value
+            local, uniques = pd.factorize(attributes[self.fields[0]])  # nulls: -1, the last entry
+            keys = [(value,) for value in uniques.tolist()] + [(None,)]
+            return np.array([self._lookup.get(key, -1) for key in keys], dtype=np.int64)[local]
         local = grouping.group_features(attributes, list(self.fields))
         rows = local.keys[list(self.fields)].to_numpy(dtype=object)
         mapping = np.array([self._lookup.get(_key(row), -1) for row in rows], dtype=np.int64)

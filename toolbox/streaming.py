@@ -107,25 +107,33 @@ class _Coded:
     n_groups: int
 
 
-def _coded(batch: PointLayer, group_by, weight, setup, registry: KeyRegistry) -> _Coded:
+def _coded(batch: PointLayer, weight, setup, keys: KeyRegistry | KeyTable) -> _Coded:
+    """A batch decoded, its groups coded by a registry (new groups added) or by a fixed key
+    table (a group it lacks means the layer changed since the table was made)."""
     weights = grouping.feature_weights(batch.attributes, weight, batch.label)
     x, y = setup.coordinates(batch.x, batch.y, batch.crs, batch.label)
-    codes = registry.code(batch.attributes)
+    codes = keys.code(batch.attributes) if isinstance(keys, KeyRegistry) else keys.codes(batch.attributes)
+    if codes.size and codes.min() < 0:
+        raise _changed(batch.label)
     if batch.feature.size != len(batch.attributes):  # MultiPoints: a feature's code for each point
         codes = codes[batch.feature]
         weights = None if weights is None else weights[batch.feature]
-    return _Coded(x, y, weights, codes, registry.count)
+    return _Coded(x, y, weights, codes, keys.count)
 
 
-def _coded_batches(parts: LayerParts, fields, group_by, weight, setup, batch_rows: int, registry: KeyRegistry):
-    """Every batch of the layer decoded and its groups coded by ``registry``, in order.
+def _points_of(coded: _Coded, setup) -> estimate.Points:
+    return estimate.Points.build(coded.x, coded.y, coded.codes, coded.n_groups, coded.w, distance=setup)
+
+
+def _coded_batches(parts: LayerParts, fields, weight, setup, batch_rows: int, keys: KeyRegistry | KeyTable):
+    """Every batch of the layer decoded and its groups coded by ``keys``, in order.
 
     Meant to run in the reading thread (:func:`~toolbox.layers.stream.prefetched`), which then
-    reads, checks weights, transforms and codes while the caller computes; ``registry`` is then
+    reads, checks weights, transforms and codes while the caller computes; a registry is then
     that thread's until the batches are used up (the caller takes counts from each batch).
     """
     for batch in parts.batches(fields, batch_rows):
-        yield _coded(batch, group_by, weight, setup, registry)
+        yield _coded(batch, weight, setup, keys)
 
 
 def _points(decoded: _Decoded, codes: np.ndarray, n_groups: int, setup) -> estimate.Points:
@@ -225,18 +233,7 @@ def _spill_folder(parts: LayerParts) -> str | None:
 
 def _batch_then(batch: PointLayer, keys: KeyTable, group_by, weight, setup, then: Callable, into=None):
     """On a worker: decode a batch, code its groups as ``keys`` does, and add it with ``then``."""
-    decoded = _decode(batch, group_by, weight, setup)
-    mapping = _mapping(keys, decoded.keys, batch.label)
-    return then(_points(decoded, mapping[decoded.local_codes], keys.count, setup), into=into)
-
-
-def _mapping(keys: KeyTable, local: KeyTable, label: str) -> np.ndarray:
-    if not keys.fields:
-        return np.zeros(1, dtype=np.int64)
-    codes = keys.codes(local.keys)
-    if (codes < 0).any():
-        raise _changed(label)
-    return codes
+    return then(_points_of(_coded(batch, weight, setup, keys), setup), into=into)
 
 
 def _changed(label: str) -> InputError:
@@ -292,10 +289,9 @@ class Prepared:
             for x, y, w, codes in self.spill.read():
                 yield estimate.Points.build(x, y, self.order[codes], n, w, distance=self.setup)
             return
-        for batch in prefetched(self.parts.batches(self._fields(), self.batch_rows)):
-            decoded = _decode(batch, self.group_by, self.weight, self.setup)
-            mapping = _mapping(self.keys, decoded.keys, batch.label)
-            yield _points(decoded, mapping[decoded.local_codes], n, self.setup)
+        batches = _coded_batches(self.parts, self._fields(), self.weight, self.setup, self.batch_rows, self.keys)
+        for coded in prefetched(batches):
+            yield _points_of(coded, self.setup)
 
     def reduce(self, accumulate: Callable, merge: Callable = _merge_states):
         """One more pass: every batch added with ``accumulate(points, into=state)`` (None for the
@@ -390,15 +386,14 @@ def prepare(
     store = None if folder is None else _Spill(folder, weight is not None)
     try:
         registry, survey = KeyRegistry(group_by), None
-        for coded in prefetched(_coded_batches(parts, fields, group_by, weight, setup, batch_rows, registry)):
+        for coded in prefetched(_coded_batches(parts, fields, weight, setup, batch_rows, registry)):
             running, count = coded.codes, coded.n_groups
             if store is not None:  # in group order: later passes then touch one group's bins at a time
                 small = np.uint16 if count <= np.iinfo(np.uint16).max else np.int32
                 order = np.argsort(running.astype(small), kind="stable")  # 16 bits: a radix sort
                 w = None if coded.w is None else coded.w[order]
                 store.write(coded.x[order], coded.y[order], w, running[order])
-            points = estimate.Points.build(coded.x, coded.y, running, count, coded.w, distance=setup)
-            mine = Survey.of(points)
+            mine = Survey.of(_points_of(coded, setup))
             survey = mine if survey is None else recode_survey(survey, _all(survey), count).merge(mine)
         if survey is None:
             raise _empty(parts)
@@ -449,7 +444,7 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
     registry, sketch = KeyRegistry(group_by), OnePass(tolerance=tolerance, method=method)
 
     def coded():
-        for batch in prefetched(_coded_batches(parts, fields, group_by, weight, setup, batch_rows, registry)):
+        for batch in prefetched(_coded_batches(parts, fields, weight, setup, batch_rows, registry)):
             yield batch, batch.codes
 
     try:
@@ -503,7 +498,7 @@ def _coded_chunks(parts: LayerParts, fields, group_by, weight, setup, batch_rows
     memory is what a concatenation costs on some machines).
     """
     size = max(batch_rows, ONE_PASS_CHUNK)
-    batches = _coded_batches(parts, fields, group_by, weight, setup, batch_rows, registry)
+    batches = _coded_batches(parts, fields, weight, setup, batch_rows, registry)
     free: queue.Queue = queue.Queue()
     stop = threading.Event()  # set when the caller stops: a fill waiting for a buffer ends
 
@@ -614,8 +609,7 @@ def binned(ready: Prepared, *, tolerance: float, method: str):
 
 def coded_points(ready: Prepared, batch: PointLayer) -> estimate.Points:
     """A batch read again (any fields) as estimator points, its groups coded as ``ready.keys``."""
-    decoded = _decode(batch, ready.group_by, ready.weight, ready.setup)
-    return _points(decoded, _mapping(ready.keys, decoded.keys, batch.label)[decoded.local_codes], ready.keys.count, ready.setup)
+    return _points_of(_coded(batch, ready.weight, ready.setup, ready.keys), ready.setup)
 
 
 #: most sub-bins refined in one pass: their state (six float64 each) stays under ~400 MB, and a
