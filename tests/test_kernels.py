@@ -257,6 +257,64 @@ def test_many_small_groups(method, tolerance):
         )
 
 
+def crowding_groups(seed=32):
+    # three groups of 3,000 points, more than the bucketed kernel's probe reads (4 per bucket of
+    # 256): one Gaussian (a few hundred buckets suffice), one 90 % inside 1 m amid 10 km of
+    # scatter (its first points already crowd), and one whose first 1,200 points are spread
+    # over 1 km and the other 1,800 within 1 cm (the probe passes, the whole group crowds)
+    rng = np.random.default_rng(seed)
+    n = 3000
+    blob = rng.random(n) < 0.9
+    parts = [
+        (rng.normal(0, 300, n), rng.normal(0, 300, n)),
+        (np.where(blob, rng.normal(0, 1, n), rng.uniform(-5e3, 5e3, n)), np.where(blob, rng.normal(0, 1, n), rng.uniform(-5e3, 5e3, n))),
+        (np.r_[rng.uniform(0, 1e3, 1200), rng.uniform(0, 0.01, 1800)], np.r_[rng.uniform(0, 1e3, 1200), rng.uniform(0, 0.01, 1800)]),
+    ]
+    x = np.concatenate([p[0] for p in parts]) + 500_000.0
+    y = np.concatenate([p[1] for p in parts]) + 6_120_000.0
+    return x, y, np.repeat(np.arange(3), n), rng.gamma(2.0, 1.5, 3 * n)
+
+
+@pytest.mark.parametrize("weighted", [False, True], ids=["unweighted", "weighted"])
+def test_crowded_groups_get_more_buckets(weighted):
+    x, y, g, w = crowding_groups()
+    w = w if weighted else None
+    r = grouped_pair_sums(x, y, g, 3, w, tolerance=0.01, method="projection", threads=2)
+    for code in range(3):
+        mine = g == code
+        reference = pdist_total(x[mine], y[mine], None if w is None else w[mine])  # scipy pdist
+        check_against_reference(r.total[code], r.lower[code], r.upper[code], r.rel_bound[code], reference, 0.01, False)
+    # each group's bucket counts are decided from its own points alone: the same on one thread
+    again = grouped_pair_sums(x, y, g, 3, w, tolerance=0.01, method="projection", threads=1)
+    for column in ("total", "lower", "upper"):
+        np.testing.assert_array_equal(getattr(again, column), getattr(r, column))
+
+
+def test_crowded_groups_are_probed():
+    # the probe raises the bucket count of the group whose first points crowd, and only that one
+    # (the group that crowds later is bucketed again within each task)
+    bucketed = pytest.importorskip("toolbox.kernels._bucketed")
+    from toolbox.kernels import GroupLayout
+    from toolbox.kernels._common import directions_unit_vectors
+    from toolbox.kernels.pairs import _bucket_core
+
+    x, y, g, _ = crowding_groups()
+    lay = GroupLayout.build(x, y, g, 3, None)
+    radius = lay.radius_max()
+    budget = 3e-4
+    buckets = bucketed.bucket_counts(lay.counts, budget)
+    before = buckets.copy()
+    cos_t, sin_t = directions_unit_vectors(8)
+    groups = np.arange(3)
+    core = _bucket_core(lay, radius)
+    bucketed._all_tasks(
+        lay.x, lay.y, np.zeros(1), False, lay.starts, lay.counts, groups, cos_t, sin_t, radius,
+        core, budget, buckets, bucketed.bucket_cap(budget), bucketed._runs(lay.counts, 8),
+    )
+    assert before.tolist() == [256, 256, 256]
+    assert buckets.tolist() == [256, 1024, 256]
+
+
 def test_groups_without_pairs():
     # empty codes, single points, a group whose weights are all zero and one with a single
     # non-zero weight have no pair weight: NaN totals, as the GroupPairSums docstring says

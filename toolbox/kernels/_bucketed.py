@@ -3,8 +3,9 @@
 Along one direction, a group's projected values are dropped into B buckets spanning its radius:
 equal ones over a core of ± twice the group's mean distance from its centre, holding three
 quarters of them, and coarser equal ones over the two tails beyond (a few remote points would
-otherwise stretch every bucket and leave the dense core in few of them). B is a third to two
-thirds of the group's points, at most a cap that grows as the budget shrinks (:func:`bucket_cap`).
+otherwise stretch every bucket and leave the dense core in few of them). B is what the budget
+needs (a few hundred at tolerance 0.01, however many points; :func:`bucket_counts`); groups too
+large for a core get a cap that grows as the budget shrinks (:func:`bucket_cap`).
 Pairs in different buckets are ordered, so their sum is exact from each bucket's weight
 ``W_b`` and weighted position sum ``S_b`` alone (``Σ_b S_b·W_<b − W_b·S_<b``). The pairs inside
 one bucket contribute between 0 and the bucket's spread of values times ``W_b²/4`` (exactly
@@ -46,6 +47,8 @@ CAP_SCALE = 280.0
 _BOUND = 0.25 * (1 + 1e-9)
 #: point-directions per run of tasks sharing one scratch accumulator (a few hundred µs of work)
 RUN_POINTS = 1 << 16
+#: points per bucket of the probe of a group's first direction (see _crowds)
+_PROBE = 4
 #: heaviest buckets picked one by one before a task sorts the rest by their uncertainty
 _PICKS = 16
 
@@ -82,26 +85,12 @@ def _sorted_pair_sum(p, w):
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _bucket_count(n, cap):
-    """Buckets of a group of n points: 1.5 to 3 points per bucket, 16 to ``cap``.
-
-    Fewer buckets mean less to scan per task but more crowded ones to resolve; for groups of a
-    few thousand points at tolerance 0.01 this is the faster side of that balance.
-    """
-    buckets = 16
-    while 3 * buckets < n and buckets < cap:
-        buckets *= 2
-    return buckets
-
-
-@njit(cache=True, nogil=True, inline="always")
-def _frame(n, radius, core, cap):
-    """How a group of n points is bucketed: (buckets, radius, core, q, mid, tail and core scales).
+def _frame(buckets, radius, core):
+    """How a group is bucketed: (buckets, radius, core, q, mid, tail and core scales).
 
     q coarse buckets per tail beyond ±core, mid dense ones between; tails only when they are
     wide, since a narrow one would scale its index by a huge factor.
     """
-    buckets = _bucket_count(n, cap)
     q = buckets // 8 if core < 0.5 * radius else 0  # buckets of each tail
     core = core if q > 0 else radius
     mid = buckets - 2 * q
@@ -134,18 +123,19 @@ def _clear(acc, buckets):
         acc[b, 5] = -np.inf
 
 
-@njit(cache=True, nogil=True)
-def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, cap, acc):
-    """(exact part, remaining uncertainty, longest addition chain) of one group's projected
-    pair sum on one direction.
+@njit(cache=True, nogil=True, inline="always")
+def _bucket_count(n, cap):
+    """Buckets of a group of n points when its budget's own count left too much uncertainty:
+    1.5 to 3 points per bucket, 16 to ``cap``."""
+    buckets = 16
+    while 3 * buckets < n and buckets < cap:
+        buckets *= 2
+    return buckets
 
-    ``acc`` is the thread's scratch, at least as many rows as this task has buckets, all empty
-    (see :func:`_clear`); they are left empty again, so the next task reuses them as they are.
-    """
-    if n < 2 or radius <= 0.0:
-        return 0.0, 0.0, 0.0
-    frame = _frame(n, radius, core, cap)
-    buckets = frame[0]
+
+@njit(cache=True, nogil=True)
+def _fill(x, y, w, weighted, start, n, c, s, frame, acc):
+    """Drop points start:start + n, projected on (c, s), into the buckets of ``frame``."""
     # one row per bucket (weight, weighted position, pair weight, count, min, max): a point
     # touches one cache line, not six arrays
     for i in range(start, start + n):
@@ -163,16 +153,21 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, cap, acc)
         acc[b, 3] = k + 1.0
         acc[b, 4] = min(acc[b, 4], p)
         acc[b, 5] = max(acc[b, 5], p)
-    # one pass over the buckets: pairs in different buckets, pairs of two-point buckets, and
-    # the bound of the crowded ones (see _BOUND)
+
+
+@njit(cache=True, nogil=True)
+def _scan(acc, buckets):
+    """One pass over the buckets: (exact part, uncertainty, points in buckets of three or more,
+    most points in one bucket) from pairs in different buckets, pairs of two-point buckets,
+    and the bound of the crowded ones (see _BOUND)."""
     exact = 0.0
     acc_w = 0.0
     acc_s = 0.0
     uncertain = 0.0
-    crowded = 0.0  # points in buckets of three or more
-    most = 0.0  # most points in one bucket
+    crowded = 0.0
+    most = 0.0
     for b in range(buckets):
-        # arithmetic rather than branches, as above: an empty bucket adds exact zeros (its
+        # arithmetic rather than branches, as in _fill: an empty bucket adds exact zeros (its
         # width, inf below -inf, is clamped to 0), and a factor 0 or 1 picks each case
         k = acc[b, 3]
         wb, sb = acc[b, 0], acc[b, 1]
@@ -185,6 +180,57 @@ def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, cap, acc)
         uncertain += (width * _BOUND * wb * wb) * many
         crowded += k * many
         most = max(most, k)
+    return exact, uncertain, crowded, most
+
+
+@njit(cache=True, nogil=True)
+def _scratch(rows):
+    """An empty scratch accumulator of ``rows`` buckets. Allocated here, in a plain compiled
+    function: inside a parallel loop numba would make a parallel loop of an array expression,
+    handed out one element at a time under ``thread_limit``."""
+    acc = np.empty((rows, 6))
+    _clear(acc, rows)
+    return acc
+
+
+@njit(cache=True, nogil=True)
+def _crowds(x, y, w, weighted, start, c, s, radius, core, budget, buckets, acc):
+    """Whether a group's leading ``_PROBE * buckets`` points, bucketed alone on (c, s), leave
+    more than half the budget: then they crowd (a dense cluster, whose buckets would cost a
+    chain of dependent updates per point and a resolution). Their uncertainty relative to
+    their exact part is about that of the whole group: both grow as the points squared."""
+    frame = _frame(buckets, radius, core)
+    _fill(x, y, w, weighted, start, _PROBE * buckets, c, s, frame, acc)
+    exact, uncertain, _, _ = _scan(acc, buckets)
+    _clear(acc, buckets)
+    return uncertain > 0.5 * budget * exact
+
+
+@njit(cache=True, nogil=True)
+def _one_task(x, y, w, weighted, start, n, c, s, radius, core, budget, buckets, cap, acc):
+    """(exact part, remaining uncertainty, longest addition chain) of one group's projected
+    pair sum on one direction.
+
+    ``acc`` is the thread's scratch, at least as many rows as this task may use (``buckets``,
+    or :func:`_bucket_count` of n and ``cap``), all empty (see :func:`_clear`); they are left
+    empty again, so the next task reuses them as they are. A task that leaves more uncertainty
+    than its budget with ``buckets`` is bucketed again with :func:`_bucket_count`'s.
+    """
+    if n < 2 or radius <= 0.0:
+        return 0.0, 0.0, 0.0
+    frame = _frame(buckets, radius, core)
+    _fill(x, y, w, weighted, start, n, c, s, frame, acc)
+    exact, uncertain, crowded, most = _scan(acc, buckets)
+    more = _bucket_count(n, cap)
+    if uncertain > budget * exact and more > buckets:
+        # points packed more tightly than the budget's count assumed (a dense cluster): once
+        # more with a bucket per few points, which costs a pass, where resolving the crowded
+        # buckets would cost several
+        _clear(acc, buckets)
+        buckets = more
+        frame = _frame(buckets, radius, core)
+        _fill(x, y, w, weighted, start, n, c, s, frame, acc)
+        exact, uncertain, crowded, most = _scan(acc, buckets)
     # longest chain of additions behind any sum: a bucket's points, then the buckets twice
     chain = 2.0 * buckets + 8.0 + most
     cheap = 4 * crowded <= n  # few collisions: resolving them all costs little
@@ -315,11 +361,35 @@ def _resolve(p, w):
     return exact, 0.0
 
 
+@njit(cache=True, nogil=True)
+def _to_probe(counts, groups, buckets, cap):
+    """Groups of ``groups`` worth probing: more points than twice the probe's, and a larger
+    count to go to."""
+    out = np.empty(groups.size, dtype=np.int64)
+    k = 0
+    for g in groups:
+        if counts[g] > 2 * _PROBE * buckets[g] and _bucket_count(counts[g], cap) > buckets[g]:
+            out[k] = g
+            k += 1
+    return out[:k]
+
+
 @njit(parallel=True, cache=True, nogil=True)
-def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, cap, bounds):
+def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, buckets, cap, bounds):
     """Every (group, direction) task, in runs ``bounds[j]:bounds[j + 1]`` of consecutive tasks
-    (groups major): each run is one parallel iteration with one scratch accumulator."""
+    (groups major): each run is one parallel iteration with one scratch accumulator.
+    ``buckets`` is every group's bucket count (see :func:`bucket_counts`), raised here for
+    groups whose points crowd (:func:`_crowds`) to :func:`_bucket_count` of ``cap``."""
     m = cos_t.size
+    # groups large enough to pay for it are probed first, on their first direction: those whose
+    # leading points crowd get a bucket per few points in every task (each group decided by
+    # one iteration, from its own points: the same counts whatever the threads)
+    probed = _to_probe(counts, groups, buckets, cap)
+    for j in prange(probed.size):
+        g = probed[j]
+        acc = _scratch(buckets[g])
+        if _crowds(x, y, w, weighted, starts[g], cos_t[0], sin_t[0], radius[g], core[g], budget, buckets[g], acc):
+            buckets[g] = _bucket_count(counts[g], cap)
     # np.empty, not np.zeros: numba would make a parallel loop of each fill, handed out one
     # element at a time under thread_limit (every task writes its entries below)
     exact = np.empty(groups.size * m)
@@ -329,14 +399,14 @@ def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, 
         first, last = bounds[j], bounds[j + 1]
         rows = 16
         for task in range(first, last):
-            rows = max(rows, _bucket_count(counts[groups[task // m]], cap))
-        acc = np.empty((rows, 6))
-        _clear(acc, rows)
+            g = groups[task // m]
+            rows = max(rows, buckets[g], _bucket_count(counts[g], cap))
+        acc = _scratch(rows)
         for task in range(first, last):
             g = groups[task // m]
             k = task % m
             e, u, c = _one_task(
-                x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget, cap, acc
+                x, y, w, weighted, starts[g], counts[g], cos_t[k], sin_t[k], radius[g], core[g], budget, buckets[g], cap, acc
             )
             exact[task] = e
             uncertain[task] = u
@@ -358,6 +428,43 @@ def bucket_cap(budget):
     while cap < MAX_BUCKETS and cap * math.sqrt(budget) < CAP_SCALE:
         cap *= 2
     return cap
+
+
+#: groups of fewer points have a dense core of buckets (``pairs._bucket_core``) and as many
+#: buckets as their budget needs; larger ones get the cap
+SMALL_GROUP = 2 * MAX_BUCKETS
+#: with B buckets over a dense core, a task leaves an in-bucket uncertainty of about SHAPE / B²
+#: of its exact part (measured 5.6 typical, 8.5 at most, over the 8,000 tasks of 1,000 Gaussian
+#: groups with 2 % remote members); twice the worst, so that few tasks need resolving
+SHAPE = 16.0
+
+
+def _power_of_two(v):
+    """Smallest power of two at least ``v`` (and at least 16), elementwise."""
+    return np.left_shift(1, np.ceil(np.log2(np.maximum(v, 16))).astype(np.int64))
+
+
+def bucket_counts(counts, budget):
+    """Buckets per task of each group for an uncertainty ``budget``.
+
+    A small group gets the fewest buckets that leave it within its budget (:data:`SHAPE`),
+    never more than its points (rounded up to a power of two): every bucket costs a clear and a
+    scan per task, which for a thousand points is as much as the points themselves. More would
+    only narrow an uncertainty that already fits (a bucket per 4, 8 or 16 points at least was
+    slower on the benchmark's 1,000 groups of 182-5,574 points). Large groups, bucketed evenly
+    over their whole radius, get :func:`bucket_cap`.
+
+    Examples
+    --------
+    >>> bucket_counts(np.array([10, 182, 5_574, 200_000]), 3e-4).tolist()  # tolerance 0.01
+    [16, 256, 256, 16384]
+    """
+    counts = np.asarray(counts)
+    cap = bucket_cap(budget)
+    enough = 16
+    while enough * enough * budget < SHAPE and enough < cap:
+        enough *= 2
+    return np.where(counts < SMALL_GROUP, np.minimum(enough, _power_of_two(counts)), cap)
 
 
 def _runs(counts, m):
@@ -385,7 +492,7 @@ def bucketed_group_sums(x, y, w, starts, counts, groups, cos_t, sin_t, radius, b
     core = radius if core is None else core
     bounds = _runs(counts[groups], cos_t.size)
     exact, uncertain, chain = _all_tasks(
-        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bucket_cap(budget), bounds
+        x, y, wv, weighted, starts, counts, groups, cos_t, sin_t, radius, core, budget, bucket_counts(counts, budget), bucket_cap(budget), bounds
     )
     shape = (groups.size, cos_t.size)
     return (

@@ -263,7 +263,7 @@ def _bucket_core(lay, radius):
     distance, unlike the RMS one, is hardly moved by a few remote members. Larger groups keep
     equal buckets (their buckets are narrow already).
     """
-    small = (lay.counts < 2 * _compiled().MAX_BUCKETS) & (lay.weight_sum > 0)
+    small = (lay.counts < _compiled().SMALL_GROUP) & (lay.weight_sum > 0)
     if not small.any():
         return radius
     mean = np.divide(lay.radius_sum(), lay.weight_sum, out=radius.copy(), where=small)
