@@ -196,8 +196,10 @@ class GroupLayout:
     """Points sorted by group, each group centred on its (weighted) mean (see :func:`centre`)."""
 
     n_groups: int
-    order: np.ndarray | None  # original index of each sorted point; None: already in order
-    codes: np.ndarray  # group of each sorted point
+    #: original index of each sorted point (None: already in order), or the (codes, n_groups)
+    #: it is made from on first use (see :attr:`order`)
+    _order: np.ndarray | tuple | None
+    _codes: np.ndarray | None  # group of each sorted point (None: made from the counts on use)
     counts: np.ndarray
     starts: np.ndarray
     x: np.ndarray
@@ -243,16 +245,17 @@ class GroupLayout:
         that centre the groups and sum what the other kernels need per group."""
         weighted = weights is not None
         w = weights if weighted else np.zeros(1)
-        index = np.zeros(0)
         if ordered:
             counts = np.array([x.size]) if n_groups == 1 else np.bincount(groups, minlength=n_groups)
         else:
-            x, y, sorted_w, counts, index = by_group(groups, n_groups, x, y, weights, compiled)
-            w = sorted_w if weighted else w
+            # records without the original index: the order is made only if asked for (unsort)
+            codes = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
+            rec, counts = compiled.group_records(
+                codes, n_groups, compiled.slices(), _read_only(x), _read_only(y), _read_only(w), weighted, False
+            )
+            x, y, w = rec[:, 0], rec[:, 1], rec[:, 2] if weighted else w
         counts = counts.astype(np.int64)
         starts = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
-        if not ordered:
-            groups = np.repeat(np.arange(n_groups, dtype=np.int64), counts)
         # pieces of at most PIECE points of one group, so that one large group is shared out too
         per_group = -(-counts // compiled.PIECE)
         piece_group = np.repeat(np.arange(n_groups), per_group)
@@ -260,29 +263,44 @@ class GroupLayout:
         offset = np.arange(piece_group.size) - first[piece_group]
         piece_start = starts[piece_group] + offset * compiled.PIECE
         piece_stop = np.minimum(piece_start + compiled.PIECE, (starts + counts)[piece_group])
-        n, moved = x.size, index.size > 0
-        out = (
-            np.empty(n),
-            np.empty(n),
-            np.empty(n if moved and weighted else 0),
-            np.empty(n if moved else 0, dtype=np.int64),
-        )
+        n, moved = x.size, not ordered
+        out = (np.empty(n), np.empty(n), np.empty(n if moved and weighted else 0), np.empty(0, dtype=np.int64))
         # consecutive pieces in blocks of about PIECE points, one hand-out to a thread each
         size = piece_stop - piece_start
         block = (np.cumsum(size) - size) // compiled.PIECE
         blocks = np.concatenate([[0], np.flatnonzero(np.diff(block)) + 1, [block.size]]).astype(np.int64)
         pieces = (piece_group, piece_start, piece_stop, blocks)
+        index = np.zeros(0)
         weight_sum, pair_weight, radius_max, radius_sum = compiled.centre_pieces(
-            _read_only(x), _read_only(y), _read_only(w), weighted, _read_only(index), centred, *pieces, n_groups, out
+            _read_only(x), _read_only(y), _read_only(w), weighted, moved, _read_only(index), centred, *pieces, n_groups, out
         )
         xs, ys = out[0], out[1]
-        order = out[3] if moved else None
+        # points moved: their sorted codes and original order are made only if a kernel asks
+        # for them (pair sums do not), from the codes as given (``_order``)
+        order = (codes, n_groups) if moved else None
         weights = None if not weighted else out[2] if moved else weights
         if not weighted:
             weight_sum = counts.astype(np.float64)
         wpt = np.broadcast_to(1.0, xs.shape) if weights is None else weights
         sums = GroupSums(pair_weight, radius_max, radius_sum) if centred else None
-        return cls(n_groups, order, groups, counts, starts, xs, ys, weights, wpt, weight_sum, sums)
+        return cls(n_groups, order, None if moved else groups, counts, starts, xs, ys, weights, wpt, weight_sum, sums)
+
+    @functools.cached_property
+    def order(self) -> np.ndarray | None:
+        """Original index of each sorted point; None when the points were in order already."""
+        if not isinstance(self._order, tuple):
+            return self._order
+        codes, n_groups = self._order
+        compiled = compiled_module("_layout")
+        with thread_limit(None if codes.size >= _PARALLEL_POINTS else 1):
+            return compiled.group_order(codes, n_groups, compiled.slices())
+
+    @functools.cached_property
+    def codes(self) -> np.ndarray:
+        """Group of each sorted point."""
+        if self._codes is not None:
+            return self._codes
+        return np.repeat(np.arange(self.n_groups, dtype=np.int64), self.counts)
 
     def unsort(self, values: np.ndarray) -> np.ndarray:
         """Per-point values in group order put back in input order."""
@@ -395,8 +413,10 @@ def by_group(groups, n_groups: int, x, y, weights=None, compiled=None):
     compiled = compiled or compiled_module("_layout")
     weighted = weights is not None
     codes = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
-    w = _read_only(weights) if weighted else np.zeros(1)
-    rec, counts = compiled.group_records(codes, n_groups, compiled.slices(), _read_only(x), _read_only(y), w, weighted)
+    w = _read_only(weights if weighted else np.zeros(1))  # one compiled version for both
+    rec, counts = compiled.group_records(
+        codes, n_groups, compiled.slices(), _read_only(x), _read_only(y), w, weighted, True
+    )
     return rec[:, 0], rec[:, 1], rec[:, 2] if weighted else None, counts, rec[:, -1]
 
 

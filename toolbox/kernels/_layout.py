@@ -20,7 +20,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["group_records", "centre_pieces", "slices", "PIECE"]
+__all__ = ["group_records", "group_order", "centre_pieces", "slices", "PIECE"]
 
 #: points per piece of the parallel passes (two arrays of it stay in a core's cache)
 PIECE = 1 << 16
@@ -58,22 +58,24 @@ def _slice_offsets(fill):
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def group_records(codes, n_groups, parts, x, y, w, weighted):
-    """Stable counting sort by group: one record (x, y, [w,] original index) per point, in
+def group_records(codes, n_groups, parts, x, y, w, weighted, indexed):
+    """Stable counting sort by group: one record (x, y, [w,] [original index]) per point, in
     group order, and the count of every group.
 
     The input is cut into ``parts`` consecutive slices, counted and scattered in parallel:
     each slice writes its points of a group after those of the slices before it, so the order
     within a group stays the input's. One record per point keeps the scattered writes to one
     stream per group (a thousand groups then fit a core's cache), several times faster than
-    gathering each array through an index. The index is stored as a float64, exact below 2**53.
+    gathering each array through an index. The index (``indexed``) is stored as a float64,
+    exact below 2**53; without it the records are a third smaller and twice as fast to write
+    (:func:`group_order` gives the order when it is wanted after all).
     """
     bounds, fill = _slices(codes.size, parts, n_groups)
     for p in prange(parts):
         for i in range(bounds[p], bounds[p + 1]):
             fill[p, codes[i]] += 1
     counts = _slice_offsets(fill)
-    rec = np.empty((codes.size, 4 if weighted else 3))
+    rec = np.empty((codes.size, 2 + weighted + indexed))
     last = rec.shape[1] - 1
     for p in prange(parts):
         for i in range(bounds[p], bounds[p + 1]):
@@ -84,8 +86,28 @@ def group_records(codes, n_groups, parts, x, y, w, weighted):
             rec[j, 1] = y[i]
             if weighted:
                 rec[j, 2] = w[i]
-            rec[j, last] = i
+            if indexed:
+                rec[j, last] = i
     return rec, counts
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def group_order(codes, n_groups, parts):
+    """The original index of every point in group order: :func:`group_records`'s stable
+    counting sort, of the indices alone."""
+    bounds, fill = _slices(codes.size, parts, n_groups)
+    for p in prange(parts):
+        for i in range(bounds[p], bounds[p + 1]):
+            fill[p, codes[i]] += 1
+    _slice_offsets(fill)
+    order = np.empty(codes.size, dtype=np.int64)
+    for p in prange(parts):
+        for i in range(bounds[p], bounds[p + 1]):
+            g = codes[i]
+            j = fill[p, g]
+            fill[p, g] = j + 1
+            order[j] = i
+    return order
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -118,13 +140,13 @@ def _subtract(xo, yo, w, weighted, first, stop, cx, cy):
 
 
 @njit(cache=True, nogil=True)
-def _sum_piece(x, y, w, weighted, index, centred, whole, first, stop, out, row):
-    """Pass 1 over points first:stop of one group: copy them into ``out`` (with their original
-    index and weight when ``index`` is given) and put in ``row`` Σw, Σw·before, Σwx, Σwy, Σx,
+def _sum_piece(x, y, w, weighted, moved, index, centred, whole, first, stop, out, row):
+    """Pass 1 over points first:stop of one group: copy them into ``out`` (with their weight
+    when ``moved``, their original index when ``index`` is given) and put in ``row`` Σw, Σw·before, Σwx, Σwy, Σx,
     Σy, min x, max x, min y, max y; for a ``whole`` group, centre it too, with its largest
     distance from the centre and Σ w r (else zeros there, for pass 2)."""
     xo, yo, wo, order = out
-    gathered = index.size > 0
+    indexed = index.size > 0
     sw = 0.0
     pair = 0.0
     swx = 0.0
@@ -140,10 +162,10 @@ def _sum_piece(x, y, w, weighted, index, centred, whole, first, stop, out, row):
         wi = w[i] if weighted else 1.0
         xo[i] = xi
         yo[i] = yi
-        if gathered:
+        if indexed:
             order[i] = np.int64(index[i])
-            if weighted:
-                wo[i] = wi
+        if moved and weighted:
+            wo[i] = wi
         pair += wi * sw
         sw += wi
         swx += wi * xi
@@ -159,7 +181,7 @@ def _sum_piece(x, y, w, weighted, index, centred, whole, first, stop, out, row):
     row[10], row[11] = 0.0, 0.0
     if centred and whole:
         cx, cy = _centre((sw, swx, swy, sx, sy), stop - first, (lo_x, hi_x, lo_y, hi_y))
-        row[10], row[11] = _subtract(xo, yo, wo if gathered else w, weighted, first, stop, cx, cy)
+        row[10], row[11] = _subtract(xo, yo, wo if moved else w, weighted, first, stop, cx, cy)
 
 
 @njit(cache=True, nogil=True)
@@ -208,13 +230,14 @@ def _group_totals(part, piece_group, piece_start, piece_stop, n_groups):
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def centre_pieces(x, y, w, weighted, index, centred, piece_group, piece_start, piece_stop, blocks, n_groups, out):
+def centre_pieces(x, y, w, weighted, moved, index, centred, piece_group, piece_start, piece_stop, blocks, n_groups, out):
     """Centre every group on its (weighted) mean; per-group sums.
 
-    ``x``, ``y``, ``w`` are in group order (columns of :func:`group_records`, or the inputs
-    themselves when they are in order already); ``index`` (empty when in order already) is each
-    point's original index. ``out`` is (x, y, w, order): the coordinates are copied into it
-    (``w`` and ``order`` only with an ``index`` and, for ``w``, weights), then centred in place.
+    ``x``, ``y``, ``w`` are in group order (columns of :func:`group_records`, ``moved``, or the
+    inputs themselves when they are in order already); ``index`` (empty when not wanted) is
+    each point's original index. ``out`` is (x, y, w, order): the coordinates are copied into
+    it (``w`` only when ``moved`` and weighted, ``order`` only with an ``index``), then centred
+    in place.
     Returns, per group: Σw, Σ_{i<j} w_i w_j (as Σ_i w_i·(weight before i)), the largest
     distance of a point from the centre and Σ w_i r_i (``r`` those distances). The centre is
     that of :func:`_centre`. With ``centred`` False the coordinates are only copied (and the
@@ -224,14 +247,14 @@ def centre_pieces(x, y, w, weighted, index, centred, piece_group, piece_start, p
     otherwise cost a thousand hand-outs).
     """
     xo, yo, wo, order = out
-    w_out = wo if index.size > 0 else w  # the weights in group order
+    w_out = wo if moved else w  # the weights in group order
     alone = _pieces_per_group(piece_group, n_groups)
     part = np.empty((piece_group.size, 12))
     for j in prange(blocks.size - 1):
         for k in range(blocks[j], blocks[j + 1]):
             whole = alone[piece_group[k]] == 1
             first, stop = piece_start[k], piece_stop[k]
-            _sum_piece(x, y, w, weighted, index, centred, whole, first, stop, out, part[k])
+            _sum_piece(x, y, w, weighted, moved, index, centred, whole, first, stop, out, part[k])
     # pass 2, pieces of groups of several: subtract, distances from the centre and their sums
     weight_sum, pair_weight, centres, _, _ = _group_totals(part, piece_group, piece_start, piece_stop, n_groups)
     for j in prange(blocks.size - 1):

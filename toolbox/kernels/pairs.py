@@ -188,7 +188,7 @@ def _spatially_ordered(lay):
     key |= lay.codes.astype(np.uint64) << 32
     order = np.argsort(key)
     return dataclasses.replace(
-        lay, x=lay.x[order], y=lay.y[order], w=None if lay.w is None else lay.w[order], order=None
+        lay, x=lay.x[order], y=lay.y[order], w=None if lay.w is None else lay.w[order], _order=None
     )
 
 
