@@ -86,3 +86,33 @@ def test_bins_are_ordered_like_their_values():
     mean = window[used, 1] / window[used, 0]  # weights are 1: the mean value of each bin
     assert np.all((left[used] <= mean) & (mean < left[used] + width))
     assert window[:, 3].sum() == values.size
+
+
+@pytest.mark.parametrize("weighted", [True, False])
+@pytest.mark.parametrize("into_empty", [False, True])
+def test_merged_windows_hold_the_exact_projected_sum(weighted, into_empty):
+    rng = np.random.default_rng(9)
+    # a narrow cloud (fine bins) and a wide one around it (coarse bins): merged on common bins
+    narrow = [rng.normal((500_000, 6_120_000), 3, (300, 2))]
+    wide = [rng.normal((500_300, 6_119_000), 2_000, (400, 2)), rng.normal((500_000, 6_120_000), 50, (100, 2))]
+    parts = [[(v[:, 0].copy(), v[:, 1].copy(), rng.uniform(0.5, 3, len(v))) for v in xy] for xy in (narrow, wide)]
+    a, b = (_windows(batches, weighted=weighted) for batches in parts)
+    assert (a[1][0] < b[1][0]).all()  # the narrow cloud's windows are finer
+    if into_empty:  # a window with no value yet takes the other as it is
+        a = (*dyadic.new_windows(1, 3, 64, weighted), a[3], a[4])
+        parts[0] = []
+    cells, expo, origin, cos_t, sin_t = a
+    dyadic.merge_windows(cells, expo, origin, np.array([0]), *b[:3], np.array([0]))
+    assert (expo[0] >= b[1][0]).all()
+    x, y, w = (np.concatenate(c) for c in zip(*(parts[0] + parts[1]), strict=True))
+    w = w if weighted else np.ones(x.size)
+    exact, uncertain, _ = dyadic.window_sums(cells, expo, np.array([0]), UNIT_ROUNDOFF)
+    for d in range(cos_t.size):
+        p = x * cos_t[d] + y * sin_t[d]
+        truth = _projected_pair_sum(p, w)
+        slack = 1e-9 * abs(truth)
+        assert exact[0, d] - slack <= truth <= exact[0, d] + uncertain[0, d] + slack, d
+        # every value sits in the bin its value names at the merged exponent
+        bins = np.floor(np.ldexp(p, -int(expo[0, d]))).astype(np.int64) - origin[0, d]
+        count = cells[0, d, :, 3] if weighted else cells[0, d, :, 0]
+        np.testing.assert_array_equal(count, np.bincount(bins, minlength=cells.shape[2]))

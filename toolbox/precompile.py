@@ -14,6 +14,7 @@ Without numba it does nothing (the kernels then use numpy) and says so.
 
 from __future__ import annotations
 
+import pickle
 import sys
 import time
 
@@ -64,6 +65,9 @@ def precompile() -> float | None:
         streamed = OnePass(tolerance=0.01, method="projection")  # one-pass streaming windows
         streamed.add(x, y, w, codes, 3)
         streamed.finish()
+        other = OnePass(tolerance=0.01, method="projection")  # a cluster task's state, merged
+        other.add(x[::-1] + 2000.0, y[::-1], None if w is None else w[::-1], codes, 3)
+        streamed.merge(pickle.loads(pickle.dumps(other)), np.array([2, 0, 1]), 3).finish()
         # group codes out of order (the layout's counting sort), and read-only arrays (from
         # Arrow buffers, say), which numba compiles apart
         shuffled = np.ascontiguousarray(codes[::-1])

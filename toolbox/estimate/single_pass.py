@@ -259,6 +259,100 @@ class OnePass:
                 cells, expo, origin, self.cos_t, self.sin_t,
             )  # fmt: skip
 
+    def merge(self, other: OnePass, codes: np.ndarray, n_groups: int) -> OnePass:
+        """Add ``other``'s points into this state (which it changes and returns).
+
+        ``other`` (same tolerance and method) coded its groups its own way: its group ``i`` is
+        group ``codes[i]`` here, among ``n_groups`` (the union of both; distinct codes). Per
+        group, counts and weights add and pair weight gains the pairs across the two,
+        ``W_here·W_there``. Windows merge on common bins (:func:`dyadic.merge_windows`); a
+        group binned in one state and kept in the other gets a window here and its kept points
+        binned; kept in both, its points join, and it is binned when that makes it larger than
+        the exact-sums size, as :meth:`add` does. The result is the state of all the points
+        added in one run, up to the window's exponent and the order of additions, and keeps
+        the same guarantee (docs/scale.md section 2).
+
+        Raises :class:`TooLarge` when the windows or the kept points outgrow their limits.
+        """
+        if (other.tolerance, other.method) != (self.tolerance, self.method):
+            raise ValueError("only states of the same tolerance and method merge")
+        codes = np.asarray(codes, dtype=np.int64)[: other.n_groups]
+        self._grow_groups(n_groups)
+        if other.weighted is None:  # no point added there
+            return self
+        if self.weighted is None:
+            self.weighted = other.weighted
+        elif self.weighted != other.weighted:
+            raise ValueError("only states of weighted points, or of unweighted ones, merge")
+        self.pair_weight[codes] += other.pair_weight + self.weight_sum[codes] * other.weight_sum
+        self.weight_sum[codes] += other.weight_sum
+        self.count[codes] += other.count
+        self.size_sum[codes] += other.size_sum
+        # groups binned there: a window here (taking the points kept here), then the windows add
+        there = np.flatnonzero(other.slot >= 0)
+        here = codes[there]
+        opened = here[self.slot[here] < 0]
+        self.dense[opened] = False
+        self._promote(opened)
+        self._merge_windows(self.slot[here], other, other.slot[there])
+        # points kept there: into the windows here, else kept here too
+        dense = codes[other.dense & (other.slot < 0)]
+        self.dense[dense[self.slot[dense] < 0]] = True
+        x, y, w, g = other._kept_arrays()
+        if x.size:
+            x, y, w, counts, present, starts = _in_group_order(x, y, w, codes[g], self.n_groups)
+            self._bin(x, y, w, starts, self.slot[present])
+            unbinned = self.slot[present] < 0
+            left = np.repeat(unbinned, counts[present])
+            g = np.repeat(present[unbinned], counts[present[unbinned]])
+            self.kept.append((x[left], y[left], None if w is None else w[left], g))
+        promoted = np.flatnonzero((self.slot < 0) & ~self.dense & (self.count > self.gather))
+        moved = self._promote(promoted)
+        self._demote(self._too_dense(promoted), moved)
+        if sum(part[0].size for part in self.kept) > GATHER_POINTS:
+            raise TooLarge("too many points kept for exact sums")
+        return self
+
+    def _merge_windows(self, slots: np.ndarray, other: OnePass, other_slots: np.ndarray) -> None:
+        """Add the windows of ``other_slots`` there into those of ``slots`` here (read in
+        place: a copy of every window would cost as much as the merge)."""
+        if slots.size == 0:
+            return
+        if other.bins != self.bins:
+            raise ValueError("only windows of the same number of bins merge")
+        here, there = slots // ARENA_WINDOWS, other_slots // ARENA_WINDOWS
+        for a in np.unique(here):
+            for b in np.unique(there[here == a]):
+                pair = (here == a) & (there == b)
+                self._kernel.merge_windows(
+                    *self.arenas[a], np.where(pair, slots % ARENA_WINDOWS, -1),
+                    *other.arenas[b], np.where(pair, other_slots % ARENA_WINDOWS, -1),
+                )  # fmt: skip
+
+    def __getstate__(self) -> dict:
+        """What travels between processes: the arenas up to the last window handed out (the
+        zeros beyond are not sent), the kept points as one array each, no compiled module."""
+        state = {k: v for k, v in vars(self).items() if k not in ("_kernel", "cos_t", "sin_t")}
+        state["arenas"] = [
+            tuple(part[: min(ARENA_WINDOWS, self.used - a * ARENA_WINDOWS)] for part in arena)
+            for a, arena in enumerate(self.arenas)
+            if a * ARENA_WINDOWS < self.used
+        ]
+        state["kept"] = [self._kept_arrays()] if self.kept else []
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._kernel = compiled_module("dyadic")
+        self.cos_t, self.sin_t = directions_unit_vectors(self.m)
+        for a, arena in enumerate(self.arenas):
+            # whole arenas of writable arrays (a received buffer may be read-only or short)
+            if arena[0].shape[0] < ARENA_WINDOWS or not all(part.flags.writeable for part in arena):
+                fresh = self._kernel.new_windows(ARENA_WINDOWS, self.m, self.bins, bool(self.weighted))
+                for target, part in zip(fresh, arena, strict=True):
+                    target[: part.shape[0]] = part
+                self.arenas[a] = fresh
+
     def finish(self) -> GroupPairSums:
         """Every group's total and guaranteed interval (groups in code order).
 

@@ -22,7 +22,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["add_segments", "new_windows", "window_sums", "segment_sums", "columns", "EMPTY"]
+__all__ = ["add_segments", "merge_windows", "new_windows", "window_sums", "segment_sums", "columns", "EMPTY"]
 
 #: exponent of a window that holds no value yet
 EMPTY = -(1 << 20)
@@ -73,13 +73,22 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
     # compared as floats first: a far value at a fine exponent would overflow an integer
     if np.floor(math.ldexp(lo, -e)) >= o and np.floor(math.ldexp(hi, -e)) <= o + bins - 1:
         return
+    _rebin(cells, expo, origin, slot, d, lo, hi, e)
+
+
+@njit(cache=True, nogil=True)
+def _rebin(cells, expo, origin, slot, d, lo, hi, e_min):
+    """Re-bin the open window (slot, d) at an exponent of at least ``e_min`` (and at least its
+    own) that holds its values and every value in [lo, hi]."""
+    bins = cells.shape[2]
+    e, o = expo[slot, d], origin[slot, d]
     window = cells[slot, d]
     count = _count_column(window)
     for j in range(bins):  # the bins held so far join the new values, each by its left edge:
         if window[j, count] > 0.0:  # at a coarser exponent a bin lies inside one new bin,
             lo = min(lo, math.ldexp(float(o + j), e))  # the one its edge falls in
             hi = max(hi, math.ldexp(float(o + j), e))
-    e_new = max(e, _fit(lo, hi, bins))
+    e_new = max(e, e_min, _fit(lo, hi, bins))
     a, b = _index(lo, e_new), _index(hi, e_new)
     new_o = a - (bins - (b - a + 1)) // 2
     old = window.copy()
@@ -92,6 +101,52 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
             window[t, c] += old[j, c]
     expo[slot, d] = e_new
     origin[slot, d] = new_o
+
+
+@njit(cache=True, nogil=True)
+def merge_windows(cells, expo, origin, slots, src_cells, src_expo, src_origin, src_slots):
+    """Add the windows of slot ``src_slots[k]`` of ``src_*`` (every direction) into those of
+    slot ``slots[k]`` (slots -1 are skipped).
+
+    Bins nest: a bin of width ``2^e`` lies inside one bin of any coarser exponent, the one its
+    left edge falls in. So the target is re-binned (:func:`_rebin`, as when a value falls
+    outside it) at an exponent that holds both windows' bins and is no finer than either, and
+    each source bin's sums are added to the bin its left edge names; pairs across the two
+    windows then sit in different bins exactly when their values are ordered across bins. Not
+    parallel: a merge runs a few times per pass, and re-binning copies a window.
+    """
+    m, bins = cells.shape[1], cells.shape[2]
+    for k in range(slots.size):
+        slot, s = slots[k], src_slots[k]
+        if slot < 0 or s < 0:
+            continue
+        for d in range(m):
+            e_b = src_expo[s, d]
+            if e_b == EMPTY:
+                continue
+            src = src_cells[s, d]
+            count = _count_column(src)
+            o_b = src_origin[s, d]
+            lo, hi = np.inf, -np.inf
+            for j in range(bins):
+                if src[j, count] > 0.0:
+                    lo = min(lo, math.ldexp(float(o_b + j), e_b))
+                    hi = max(hi, math.ldexp(float(o_b + j), e_b))
+            if lo > hi:
+                continue
+            if expo[slot, d] == EMPTY:
+                cells[slot, d, :, :] = src
+                expo[slot, d], origin[slot, d] = e_b, o_b
+                continue
+            _rebin(cells, expo, origin, slot, d, lo, hi, e_b)
+            e, o = expo[slot, d], origin[slot, d]
+            window = cells[slot, d]
+            for j in range(bins):
+                if src[j, count] == 0.0:
+                    continue
+                t = _index(math.ldexp(float(o_b + j), e_b), e) - o
+                for c in range(window.shape[1]):
+                    window[t, c] += src[j, c]
 
 
 @njit(parallel=True, cache=True, nogil=True)
