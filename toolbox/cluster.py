@@ -38,7 +38,7 @@ TASKS_PER_THREAD = 2
 CONNECT_TIMEOUT = 10
 
 
-def _summarise_parts(read, parts, fields, batch_rows, summarise, merge, in_place, result=None):
+def _summarise_parts(read, parts, fields, batch_rows, summarise, merge, in_place, result=None, settle=None):
     """The summary of some parts, batch after batch (memory: one batch and one summary)."""
     for part in parts:
         for batch in read(part, fields, batch_rows):  # messages name the part (its file, its number)
@@ -47,17 +47,17 @@ def _summarise_parts(read, parts, fields, batch_rows, summarise, merge, in_place
                 continue
             mine = summarise(batch)
             result = mine if result is None else merge([result, mine])
-    return result
+    return result if settle is None or result is None else settle(result)
 
 
-def _tasks(parts: LayerParts, client) -> list[list]:
+def _tasks(parts: LayerParts, client, per_thread: int = TASKS_PER_THREAD) -> list[list]:
     """Parts grouped into about two tasks per worker thread: fewer partial summaries to send and
     merge than one per file. A Dask frame's partitions stay one per task (each is computed where
     its task runs)."""
     if parts.source == "dask":
         return [[part] for part in parts.parts]
     threads = max(1, sum(client.nthreads().values()))
-    count = min(len(parts.parts), TASKS_PER_THREAD * threads)
+    count = min(len(parts.parts), per_thread * threads)
     return [list(chunk) for chunk in _chunks(parts.parts, count) if chunk]
 
 
@@ -82,6 +82,8 @@ def reduce_parts(
     merge: Callable[[list], Any],
     *,
     in_place: bool = False,
+    settle: Callable[[Any], Any] | None = None,
+    tasks_per_thread: int = TASKS_PER_THREAD,
     client=None,
     progress: Callable[[int, int], None] | None = None,
 ):
@@ -103,6 +105,13 @@ def reduce_parts(
     in_place : bool
         ``summarise(batch, into=summary)`` adds a batch to the part's summary so far (None
         for the first batch) and returns it, instead of a new summary per batch.
+    settle : callable, optional
+        ``settle(summary)`` once a task has read its parts, before its summary leaves the
+        task (a summary that holds batches back to add them together adds them then).
+    tasks_per_thread : int
+        On a cluster, about this many tasks per worker thread: more balance the load, fewer
+        send fewer summaries (one is better when a summary's size does not shrink with its
+        share of the layer).
     client : distributed.Client, optional
         Run on this cluster: parts are read and summarised on the workers (a few files per
         task, about ``TASKS_PER_THREAD`` tasks per worker thread) and merged in a tree of
@@ -142,14 +151,14 @@ def reduce_parts(
                 result = _merge_some(merge, result, mine)
             if progress is not None:
                 progress(index + 1, len(parts.parts))
-        return result
+        return result if settle is None or result is None else settle(result)
     import dask
 
     level = [
         dask.delayed(_summarise_parts, pure=True)(
-            parts.reader, task, fields, batch_rows, summarise, merge, in_place
+            parts.reader, task, fields, batch_rows, summarise, merge, in_place, settle=settle
         )
-        for task in _tasks(parts, client)
+        for task in _tasks(parts, client, tasks_per_thread)
     ]
     while len(level) > 1:
         level = [

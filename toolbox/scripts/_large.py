@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .. import cluster, estimate, layers, streaming, tables
+from .. import cluster, cluster_pass, estimate, layers, streaming, tables
 from ..errors import GeometryError, InputError, ParameterError
 from ..layers import stream
 from ..layers.batched import FrameBatches
@@ -125,7 +125,9 @@ def pair_sums(
     """Per-group pair sums of a layer in parts, on the cluster at ``dask_scheduler`` if given.
 
     A dask-geopandas frame without a scheduler runs on the caller's default Dask client, or
-    else here, partition after partition.
+    else here, partition after partition. Both here and on a cluster the layer is read once
+    when the one-pass windows can do it (planar distances, a tolerance above 0, limits kept),
+    else through the planned passes.
     """
     setup = estimate.distance_setup(parts.crs, parts.label, distance=distance, target=crs, script=script)
     rows = stream.DEFAULT_BATCH_ROWS if batch_rows is None else batch_rows
@@ -137,6 +139,12 @@ def pair_sums(
             sums, keys = once
             return Streamed(sums, keys.grouping().keys, setup.units)
     with cluster.connected(address) as client:
+        if client is not None:  # one read of the files on the workers, when that is enough
+            common = dict(group_by=group_by, weight=weight, setup=setup, batch_rows=rows)
+            once = cluster_pass.pair_sums(parts, **common, tolerance=tolerance, method=method, client=client)
+            if once is not None:
+                sums, keys = once
+                return Streamed(sums, keys.grouping().keys, setup.units)
         with streaming.prepare(
             parts, group_by=group_by, weight=weight, setup=setup, batch_rows=rows, client=client
         ) as ready:
