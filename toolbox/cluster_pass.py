@@ -54,7 +54,7 @@ class Sketch:
     def settle(self) -> Sketch:
         """Add the held batches to the state; returns the sketch."""
         if self.pending:
-            x, y, w, codes = streaming._joined(self.pending)
+            x, y, w, codes = _joined(self.pending)
             self.pending, self.held = [], 0
             self.state.add(x, y, w, codes, self.registry.count)
         return self
@@ -67,16 +67,21 @@ class Sketch:
         return pd.concat(self.registry.rows, ignore_index=True)
 
 
+def _joined(batches: list) -> tuple:
+    """Batches ``(x, y, w or None, codes)`` as one."""
+    x, y, w, codes = (list(column) for column in zip(*batches, strict=True))
+    return np.concatenate(x), np.concatenate(y), None if w[0] is None else np.concatenate(w), np.concatenate(codes)
+
+
 def _add_batch(batch: PointLayer, into: Sketch | None = None, *, group_by, weight, setup, tolerance, method) -> Sketch:
     """On a worker: decode a batch, code its groups by the sketch's registry, hold it (and add
     the held batches once they make a chunk)."""
-    decoded = streaming._decode(batch, group_by, weight, setup)
     if into is None:
         into = Sketch(KeyRegistry(tuple(group_by)), OnePass(tolerance=tolerance, method=method))
-    running = into.registry.add(decoded.keys.keys)[decoded.local_codes]
-    if running.size:
-        into.pending.append((decoded.x, decoded.y, decoded.w, running))
-        into.held += running.size
+    coded = streaming._coded(batch, weight, setup, into.registry)
+    if coded.codes.size:
+        into.pending.append((coded.x, coded.y, coded.w, coded.codes))
+        into.held += coded.codes.size
     if into.held >= streaming.ONE_PASS_CHUNK:
         into.settle()
     return into
@@ -97,17 +102,15 @@ def _merge(sketches: list[Sketch]) -> Sketch:
     return out
 
 
-def _pick(batch: PointLayer, into: list | None = None, *, keys: KeyTable, code_of, group_by, weight, setup) -> list:
+def _pick(batch: PointLayer, into: list | None = None, *, keys: KeyTable, code_of, weight, setup) -> list:
     """On a worker: the points of a batch whose groups ``code_of`` names (code ≥ 0), with those
     codes. ``keys`` holds every group of the first pass: a group it lacks means the layer changed."""
-    decoded = streaming._decode(batch, group_by, weight, setup)
-    mapping = streaming._mapping(keys, decoded.keys, batch.label)
-    codes = code_of[mapping[decoded.local_codes]]
+    coded = streaming._coded(batch, weight, setup, keys)
+    codes = code_of[coded.codes]
     keep = codes >= 0
-    w = None if decoded.w is None else decoded.w[keep]
     out = [] if into is None else into
     if keep.any():
-        out.append((decoded.x[keep], decoded.y[keep], w, codes[keep]))
+        out.append((coded.x[keep], coded.y[keep], None if coded.w is None else coded.w[keep], codes[keep]))
     return out
 
 
@@ -147,9 +150,9 @@ def pair_sums(parts, *, group_by, weight, setup, batch_rows, tolerance, method, 
         code_of = np.full(state.n_groups, -1, dtype=np.int64)
         code_of[again] = np.arange(again.size)
         keys = KeyTable(group_by, sketch.rows() if group_by else pd.DataFrame(index=range(1)))
-        pick = functools.partial(_pick, keys=keys, code_of=code_of, **common)
+        pick = functools.partial(_pick, keys=keys, code_of=code_of, weight=weight, setup=setup)
         picked = reduce_parts(parts, fields, batch_rows, pick, _concat, in_place=True, client=client)
-        x, y, w, codes = streaming._joined(picked)
+        x, y, w, codes = _joined(picked)
         points = estimate.Points.build(x, y, codes, again.size, w, distance=setup)
         closer = estimate.pair_sums(points, tolerance=tolerance, method=method)
         for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
