@@ -110,3 +110,25 @@ def test_uncentred_layout_keeps_coordinates():
     order = np.argsort(codes, kind="stable")
     assert np.array_equal(lay.x, x[order]) and np.array_equal(lay.y, y[order])
     assert np.array_equal(lay.w, w[order])
+
+
+@pytest.mark.parametrize("distance", ["planar", "geodesic"])
+def test_every_estimate_passes_its_threads_to_the_layout(distance, monkeypatch):
+    # --threads bounds every compiled pass, the layout's included: each estimate hands it on
+    from toolbox import estimate
+
+    asked = []
+    build = GroupLayout.build.__func__
+
+    def spy(cls, *args, threads=None, **kwargs):
+        asked.append(threads)
+        return build(cls, *args, threads=threads, **kwargs)
+
+    monkeypatch.setattr(GroupLayout, "build", classmethod(spy))
+    rng = np.random.default_rng(10)
+    x, y = rng.uniform(0, 0.01, 40), rng.uniform(0, 0.01, 40)
+    points = estimate.Points.build(x, y, np.arange(40) % 2, distance=distance)
+    for sums in (estimate.pair_sums, estimate.point_sums, estimate.cross_sums):
+        asked.clear()
+        sums(points, tolerance=0.01, threads=1)
+        assert asked and set(asked) == {1}, (sums.__name__, asked)

@@ -213,9 +213,10 @@ class _GeodesicPlan:
         self.exact = np.array(sorted(exact), dtype=np.int64)
         self.projected = np.array(projected, dtype=np.int64)
 
-    def buckets(self, lay):
+    def buckets(self, lay, threads=None):
         """Projected groups by the directions their planar tolerance needs: (members, tolerance,
-        the planar layout of their projected points, the mask of those points in ``lay``)."""
+        the planar layout of their projected points, the mask of those points in ``lay``);
+        ``threads`` bounds the threads of those layouts."""
         if self.projected.size == 0:
             return
         dirs = np.array([directions_for_tolerance(float(self.planar[g])) for g in self.projected])
@@ -223,7 +224,7 @@ class _GeodesicPlan:
             members = self.projected[dirs == m]
             sel = np.isin(lay.codes, members)
             w = None if lay.w is None else lay.w[sel]
-            sub = GroupLayout.build(self.x[sel], self.y[sel], lay.codes[sel], lay.n_groups, w)
+            sub = GroupLayout.build(self.x[sel], self.y[sel], lay.codes[sel], lay.n_groups, w, threads=threads)
             yield members, float(self.planar[members].min()), sub, sel
 
     def refuse(self, out: _Table, index_of) -> None:
@@ -299,7 +300,7 @@ def pair_sums(
             n = counts[plan.exact]
             tick = Ticker(stages.stage(n.sum()), int((n * (n - 1) // 2).sum()))
             out.put_raw(plan.exact, kernels.exact_geodesic_pair_raw(lay, plan.exact, a, f, tick))
-        for g, planar, sub, _ in plan.buckets(lay):
+        for g, planar, sub, _ in plan.buckets(lay, threads):
             r = _planar_pairs(sub, g, planar, method, stages.stage(counts[g].sum()), threads)
             slack = forward_slack(a, pair_weight[g])
             folded = fold_distortion(r.total[g], r.lower[g], r.upper[g], plan.k_min[g], plan.k_max[g], slack)
@@ -312,7 +313,8 @@ def point_sums(
 ) -> PointSums:
     """Weighted distance sum ``Σ_j w_j d_ij`` from every point to the rest of its group.
 
-    Parameters are those of :func:`pair_sums` (``threads`` is accepted for symmetry).
+    Parameters are those of :func:`pair_sums` (``threads`` bounds the threads of the group
+    layout; the per-point sums are numpy's).
 
     Returns
     -------
@@ -328,7 +330,7 @@ def point_sums(
     if points.shift is not None:
         raise ParameterError("Samples of pieces of features have no per-point sums of their own; use feature_sums.")
     check_method(method, tolerance)
-    geodesic, lay = _layout(points)
+    geodesic, lay = _layout(points, threads)
     counts = lay.counts
     other = lay.other_weight()
     # a zero-weight point beside one weighted point still has a distance to it
@@ -346,7 +348,7 @@ def point_sums(
             tick = Ticker(stages.stage(n.sum()), int((n * (n - 1) // 2).sum()))
             mask = np.isin(lay.codes, plan.exact)
             out.put_raw(mask, kernels.exact_geodesic_point_raw(lay, plan.exact, a, f, tick).take(mask))
-        for g, planar, sub, sel in plan.buckets(lay):
+        for g, planar, sub, sel in plan.buckets(lay, threads):
             r = _planar_points(sub, g, planar, method, stages.stage(counts[g].sum()))
             codes = sub.codes
             slack = forward_slack(a, sub.other_weight())
@@ -455,16 +457,16 @@ def _geodesic_cross(points, tolerance, method, m0, progress, threads) -> CrossPa
                 return _cross_result(within, out)
             use_exact = True
     if use_exact:
-        _, lay = _layout(points)
+        _, lay = _layout(points, threads)
         tick = Ticker(progress, n * (n - 1) // 2)
         out.put_raw(..., kernels.exact_geodesic_cross_raw(lay, a, f, tick))
-        return _cross_result(None, out, points)
+        return _cross_result(None, out, points, threads)
     planar_points = Points.build(frame.x, frame.y, points.groups, n_groups, points.weights)
     r = cross_sums(planar_points, tolerance=planar, method=method, progress=progress, threads=threads)
     folded = fold_distortion(r.total, r.lower, r.upper, frame.k_min, frame.k_max, forward_slack(a, r.pair_weight))
     out.put(..., *folded, exact=False, directions=r.directions)
     out.clear(np.isnan(r.total))
-    return _cross_result(None, out, points)
+    return _cross_result(None, out, points, threads)
 
 
 def _without_refused(points, within, out: _Table, tolerance, method, m0, threads) -> None:
@@ -494,12 +496,13 @@ def _without_refused(points, within, out: _Table, tolerance, method, m0, threads
         getattr(out, name)[block] = getattr(r, name)
 
 
-def _cross_result(within, out: _Table, points=None) -> CrossPairSums:
+def _cross_result(within, out: _Table, points=None, threads=None) -> CrossPairSums:
     """The G × G result; the diagonal from ``within`` (each group's own pair sums) if given."""
     if within is None:
         lay = GroupLayout.build(
-            np.zeros(points.x.size), np.zeros(points.x.size), points.groups, points.n_groups, points.weights
-        )
+            np.zeros(points.x.size), np.zeros(points.x.size), points.groups, points.n_groups, points.weights,
+            threads=threads,
+        )  # fmt: skip
         n_points, weight_sum, own = lay.counts, lay.weight_sum, lay.pair_weight()
     else:
         n_points, weight_sum, own = within.n_points, within.weight_sum, within.pair_weight

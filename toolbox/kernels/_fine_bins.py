@@ -359,9 +359,11 @@ def _sweep(acc, seen, weighted, q, mid, per_low, per_high, shape):
 def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, budget, scratch):
     acc, seen, cells, sample, held = scratch
     m = cos_t.size
-    exact = np.zeros(groups.size * m)
-    uncertain = np.zeros(groups.size * m)
-    chain = np.zeros(groups.size * m)
+    # np.empty, not np.zeros: in a parallel function numba makes a parallel loop of each fill,
+    # handed out one element at a time under thread_limit (every task writes its entries)
+    exact = np.empty(groups.size * m)
+    uncertain = np.empty(groups.size * m)
+    chain = np.empty(groups.size * m)
     for task in prange(groups.size * m):
         t = numba.get_thread_id()  # each thread reuses its own bins and its group's sample
         g = groups[task // m]
