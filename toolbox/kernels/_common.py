@@ -218,13 +218,17 @@ class GroupLayout:
         (longitudes and latitudes for the geodesic kernels). ``threads`` bounds the threads of
         the compiled route (None: numba's current setting)."""
         # points already in group order (one group, say) are not copied into a new order
-        ordered = n_groups == 1 or bool(np.all(groups[1:] >= groups[:-1]))
         compiled = compiled_module("_layout")
         if compiled is not None:
+            ordered = n_groups == 1
+            if not ordered:
+                groups = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
+                ordered = compiled.in_order(groups)
             # a few milliseconds of work would not repay waking the other threads
             with thread_limit(threads if x.size >= _PARALLEL_POINTS else 1):
                 return cls._build_compiled(compiled, x, y, groups, n_groups, weights, centred, ordered)
         order = None
+        ordered = n_groups == 1 or bool(np.all(groups[1:] >= groups[:-1]))
         if not ordered:
             # a stable sort of 16-bit codes is a radix sort in numpy: linear time
             small = groups.astype(np.int16) if n_groups <= np.iinfo(np.int16).max else groups
@@ -249,9 +253,8 @@ class GroupLayout:
             counts = np.array([x.size]) if n_groups == 1 else np.bincount(groups, minlength=n_groups)
         else:
             # records without the original index: the order is made only if asked for (unsort)
-            codes = _read_only(np.ascontiguousarray(groups, dtype=np.int64))
             rec, counts = compiled.group_records(
-                codes, n_groups, compiled.slices(), _read_only(x), _read_only(y), _read_only(w), weighted, False
+                groups, n_groups, compiled.slices(), _read_only(x), _read_only(y), _read_only(w), weighted, False
             )
             x, y, w = rec[:, 0], rec[:, 1], rec[:, 2] if weighted else w
         counts = counts.astype(np.int64)
@@ -277,7 +280,7 @@ class GroupLayout:
         xs, ys = out[0], out[1]
         # points moved: their sorted codes and original order are made only if a kernel asks
         # for them (pair sums do not), from the codes as given (``_order``)
-        order = (codes, n_groups) if moved else None
+        order = (groups, n_groups) if moved else None
         weights = None if not weighted else out[2] if moved else weights
         if not weighted:
             weight_sum = counts.astype(np.float64)

@@ -20,7 +20,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["group_records", "group_order", "centre_pieces", "slices", "PIECE"]
+__all__ = ["in_order", "group_records", "group_order", "centre_pieces", "slices", "PIECE"]
 
 #: points per piece of the parallel passes (two arrays of it stay in a core's cache)
 PIECE = 1 << 16
@@ -30,6 +30,16 @@ def slices() -> int:
     """Slices of the input for :func:`group_records`: a few per thread, handed out one at a time
     as threads free up (a thread that lost its core holds up one slice, not half the input)."""
     return 4 * numba.get_num_threads()
+
+
+@njit(cache=True, nogil=True)
+def in_order(codes):
+    """Whether the group codes never decrease; stops at the first that does (codes in no
+    order are told after a few, where numpy's comparison would read them all)."""
+    for i in range(1, codes.size):
+        if codes[i] < codes[i - 1]:
+            return False
+    return True
 
 
 @njit(cache=True, nogil=True)
