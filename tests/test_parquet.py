@@ -200,3 +200,29 @@ def test_attributes_of_a_batch_are_what_pyarrow_converts():
         # pyarrow's own conversion is the reference
         pd.testing.assert_frame_equal(ours, table.select(fields).to_pandas(), check_index_type=False)
         assert len(ours) == table.num_rows
+
+
+@pytest.mark.parametrize("files", [1, 2])
+def test_text_keys_streamed_as_dictionaries_group_and_sort_as_the_texts(tmp_path, homes, files):
+    import toolbox
+    from toolbox.layers.stream import layer_parts
+
+    folder = tmp_path / "homes"
+    folder.mkdir()
+    # the texts first appear out of order: in one dictionary (one file, one batch), or in
+    # different orders in many (two files of small row groups, batches of 17)
+    order = np.random.default_rng(5).permutation(len(homes))
+    rows = 10_000 if files == 1 else 17
+    for i, part in enumerate(np.array_split(order, files)):
+        homes.iloc[part].to_parquet(folder / f"{i}.parquet", row_group_size=rows if files == 1 else 23)
+    first = next(layer_parts(folder).batches(["zone"], batch_rows=rows))
+    assert isinstance(first.attributes["zone"].dtype, pd.CategoricalDtype)  # read as a dictionary
+    streamed = toolbox.group_spread(folder, group_by="zone", weight="pop", batch_rows=rows)
+    # geopandas' reader and pandas' groupby are the reference: groups sorted, nulls last
+    expected = gpd.read_parquet(folder).groupby("zone", dropna=False, sort=True).size()
+    assert streamed["zone"].tolist()[:-1] == expected.index.tolist()[:-1] and pd.isna(streamed["zone"].iloc[-1])
+    assert streamed["n_points"].tolist() == expected.tolist()
+    assert streamed["zone"].dtype == gpd.read_parquet(folder)["zone"].dtype
+    whole = toolbox.group_spread(folder, group_by="zone", weight="pop")  # read whole, in memory
+    inside = (streamed["total_lo"] <= whole["total_dist"]) & (whole["total_dist"] <= streamed["total_hi"])
+    assert inside[whole["total_dist"] > 0].all()

@@ -21,6 +21,16 @@ from . import grouping
 __all__ = ["KeyTable", "KeyRegistry", "key_table", "merge_key_tables"]
 
 
+def _plain(keys: pd.DataFrame) -> pd.DataFrame:
+    """Key columns of categories in sorted order (a text field read as a dictionary) as their
+    values: such keys sort alike either way, and the table then holds the field's own type."""
+    for name in keys.columns:
+        column = keys[name]
+        if isinstance(column.dtype, pd.CategoricalDtype) and column.cat.categories.is_monotonic_increasing:
+            keys = keys.assign(**{name: column.astype(column.cat.categories.dtype)})
+    return keys
+
+
 def _key(values) -> tuple:
     """A hashable key of one row: nulls of any kind become None; 1 and 1.0 hash alike."""
     return tuple(None if pd.isna(v) else v for v in values)
@@ -36,6 +46,9 @@ class KeyTable:
     fields: tuple[str, ...]
     keys: pd.DataFrame
     _lookup: dict = field(default_factory=dict, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "keys", _plain(self.keys))
 
     @property
     def count(self) -> int:
@@ -167,7 +180,7 @@ class KeyRegistry:
                 new.append(i)
             out[i] = code
         if new:
-            self.rows.append(frame.iloc[new])
+            self.rows.append(_plain(frame.iloc[new]))
         return out
 
     def code(self, attributes: pd.DataFrame) -> np.ndarray:
@@ -213,13 +226,13 @@ class KeyRegistry:
                 new.append(i)
             out[i] = code
         if new:
-            self.rows.append(pd.DataFrame({self.fields[0]: uniques[new]}))
+            self.rows.append(_plain(pd.DataFrame({self.fields[0]: uniques[new]})))
         nulls = np.flatnonzero(local < 0)
         if nulls.size:
             code = codes.get((None,))
             if code is None:
                 code = codes[(None,)] = len(codes)
-                self.rows.append(column.iloc[nulls[:1]].to_frame(self.fields[0]).reset_index(drop=True))
+                self.rows.append(_plain(column.iloc[nulls[:1]].to_frame(self.fields[0]).reset_index(drop=True)))
             out[-1] = code
         return out
 

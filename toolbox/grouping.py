@@ -67,8 +67,9 @@ def feature_weights(attributes: pd.DataFrame, field: str | None, label: str) -> 
     if not (pd.api.types.is_numeric_dtype(column) or column.isna().all()) or pd.api.types.is_bool_dtype(
         column
     ):
+        kind = column.dtype.categories.dtype if isinstance(column.dtype, pd.CategoricalDtype) else column.dtype
         raise InputError(
-            f"The weight field {field!r} of {label} holds {column.dtype} values, not numbers; "
+            f"The weight field {field!r} of {label} holds {kind} values, not numbers; "
             "choose a numeric field."
         )
     values = column.to_numpy(dtype=np.float64, na_value=np.nan)

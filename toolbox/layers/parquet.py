@@ -352,6 +352,21 @@ def open_parquet(data, layer: str | None = None) -> ArrowLayer:
     return ArrowLayer(dataset, geom, label)
 
 
+def dictionary_format(path: str, fields: Sequence[str]) -> pads.ParquetFileFormat:
+    """The Parquet format that reads the text ``fields`` of the file at ``path`` as dictionaries.
+
+    Their batches then hold a code per row and each distinct text once (:func:`points_of_table`
+    turns them into categories in sorted order, so they group and sort as the texts do).
+    """
+    try:
+        schema = pq.read_schema(path)
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise InputError(f"Cannot read {path!r} as Parquet: {_first_line(exc)}") from exc
+    text = {f for f in fields if f in schema.names and pa.types.is_string(schema.field(f).type)}
+    text |= {f for f in fields if f in schema.names and pa.types.is_large_string(schema.field(f).type)}
+    return pads.ParquetFileFormat(read_options=pads.ParquetReadOptions(dictionary_columns=text))
+
+
 def arrow_layer(table: pa.Table, label: str, geometry: GeometryColumn | None = None) -> ArrowLayer:
     """An :class:`ArrowLayer` over a table in memory (read from standard input, say).
 

@@ -279,9 +279,24 @@ def _arrow_attributes(table, fields: Sequence[str]) -> pd.DataFrame:
         column = table.column(name)
         kind = column.type
         if column.null_count or not (pa.types.is_integer(kind) or pa.types.is_float32(kind) or pa.types.is_float64(kind)):
-            return table.select(list(fields)).to_pandas()
+            return _sorted_categories(table.select(list(fields)).to_pandas())
         columns[name] = np.array(column)  # a writable copy, as to_pandas makes
     return pd.DataFrame(columns, index=pd.RangeIndex(table.num_rows), columns=list(fields), copy=False)
+
+
+def _sorted_categories(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with the categories of its categorical columns in sorted order.
+
+    An Arrow dictionary (a text field read as Parquet stores it) becomes categories in the order
+    the texts first appear; pandas groups and sorts categories in their order, so sorted
+    categories group and sort as the texts themselves do. Ordered categories keep their order.
+    """
+    for name in frame.columns:
+        column = frame[name]
+        categorical = isinstance(column.dtype, pd.CategoricalDtype) and not column.cat.ordered
+        if categorical and not column.cat.categories.is_monotonic_increasing:
+            frame[name] = column.cat.reorder_categories(column.cat.categories.sort_values())
+    return frame
 
 
 def _fixed_points(column) -> tuple[np.ndarray, np.ndarray] | None:
