@@ -77,6 +77,8 @@ def precompile() -> float | None:
                 a.setflags(write=False)
         for order in (codes, shuffled):
             estimate.grouped_pair_sums(x, y, order, 3, w, method="projection")
+        # per-point sums put points back in input order: the layout's order, made on demand
+        estimate.grouped_point_sums(x, y, shuffled, 3, w, method="projection")
         for order in (codes, frozen[3]):
             estimate.grouped_pair_sums(*frozen[:2], order, 3, frozen[2], method="projection")
         estimate.cross_pair_sums(x, y, codes, 3, w, method="projection")
