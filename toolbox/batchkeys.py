@@ -202,8 +202,7 @@ class KeyRegistry:
         if not self.fields:
             return np.zeros(rows, dtype=np.int64)
         if len(self.fields) > 1:
-            local = grouping.group_features(attributes, list(self.fields))
-            return self.add(local.keys)[local.codes]
+            return self._code_fields(attributes)
         column = attributes[self.fields[0]]
         dtype = column.dtype
         if rows and isinstance(dtype, np.dtype) and (dtype.kind == "i" or (dtype.kind == "u" and dtype.itemsize < 8)):
@@ -212,6 +211,45 @@ class KeyRegistry:
                 return codes
         local, uniques = pd.factorize(column)  # hashing; nulls of any kind get -1
         return self._add_values(uniques, column, local)[local]
+
+    def _code_fields(self, attributes: pd.DataFrame) -> np.ndarray:
+        """:meth:`code` for several key fields: each field hashed on its own, the rows' combined
+        numbers hashed once more, and the registry's dict consulted once per distinct combination."""
+        frame = attributes[list(self.fields)]
+        combined, fields, span = np.zeros(len(frame), dtype=np.int64), [], 1
+        for name in self.fields:
+            local, uniques = pd.factorize(frame[name])  # nulls: -1
+            span *= len(uniques) + 1
+            if span >= 1 << 62:  # the combined numbers would overflow: pandas' groupby instead
+                local = grouping.group_features(frame, list(self.fields))
+                return self.add(local.keys)[local.codes]
+            combined = combined * (len(uniques) + 1) + (local + 1)
+            fields.append([*uniques.tolist(), None])  # position -1: the null
+        if span <= len(frame):  # few combinations possible: a table over them, no hashing
+            present = np.zeros(span, dtype=bool)
+            present[combined] = True
+            combinations = np.flatnonzero(present)
+            local = (np.cumsum(present) - 1)[combined]
+        else:
+            local, combinations = pd.factorize(combined)
+        first = np.empty(len(combinations), dtype=np.int64)
+        first[local] = np.arange(len(frame))  # a row of each combination (any: its keys are the same)
+        positions, rest = [], np.asarray(combinations, dtype=np.int64)
+        for values in fields[::-1]:
+            rest, position = np.divmod(rest, len(values))
+            positions.append((values, (position - 1).tolist()))
+        out = np.empty(len(combinations), dtype=np.int64)
+        new, codes = [], self.codes
+        for i in range(len(combinations)):
+            key = tuple(values[at[i]] for values, at in positions[::-1])  # as _key makes it
+            code = codes.get(key)
+            if code is None:
+                code = codes[key] = len(codes)
+                new.append(i)
+            out[i] = code
+        if new:
+            self.rows.append(_plain(frame.iloc[first[new]].reset_index(drop=True)))
+        return out[local]
 
     def _add_values(self, uniques: pd.Index, column: pd.Series, local: np.ndarray) -> np.ndarray:
         """Running codes of the distinct non-null values ``uniques`` of one key field, then
