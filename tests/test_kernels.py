@@ -290,29 +290,34 @@ def test_crowded_groups_get_more_buckets(weighted):
         np.testing.assert_array_equal(getattr(again, column), getattr(r, column))
 
 
-def test_crowded_groups_are_probed():
+@pytest.mark.parametrize("copies", [1, 40], ids=["few probes, one thread", "many probes, in parallel"])
+def test_crowded_groups_are_probed(copies):
     # the probe raises the bucket count of the group whose first points crowd, and only that one
-    # (the group that crowds later is bucketed again within each task)
+    # (the group that crowds later is bucketed again within each task); 40 copies of the three
+    # groups give the probes more work than a run (RUN_POINTS), so they run in parallel
     bucketed = pytest.importorskip("toolbox.kernels._bucketed")
     from toolbox.kernels import GroupLayout
     from toolbox.kernels._common import directions_unit_vectors
     from toolbox.kernels.pairs import _bucket_core
 
     x, y, g, _ = crowding_groups()
-    lay = GroupLayout.build(x, y, g, 3, None)
+    shift = np.repeat(np.arange(copies) * 1e5, x.size)
+    x, y, g = np.tile(x, copies) + shift, np.tile(y, copies), np.tile(g, copies) + np.repeat(3 * np.arange(copies), g.size)
+    n_groups = 3 * copies
+    lay = GroupLayout.build(x, y, g, n_groups, None)
     radius = lay.radius_max()
     budget = 3e-4
     buckets = bucketed.bucket_counts(lay.counts, budget)
     before = buckets.copy()
     cos_t, sin_t = directions_unit_vectors(8)
-    groups = np.arange(3)
+    groups = np.arange(n_groups)
     core = _bucket_core(lay, radius)
     bucketed._all_tasks(
         lay.x, lay.y, np.zeros(1), False, lay.starts, lay.counts, groups, cos_t, sin_t, radius,
         core, budget, buckets, bucketed.bucket_cap(budget), bucketed._runs(lay.counts, 8),
     )
-    assert before.tolist() == [256, 256, 256]
-    assert buckets.tolist() == [256, 1024, 256]
+    assert before.tolist() == [256, 256, 256] * copies
+    assert buckets.tolist() == [256, 1024, 256] * copies
 
 
 def test_groups_without_pairs():

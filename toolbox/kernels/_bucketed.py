@@ -363,15 +363,29 @@ def _resolve(p, w):
 
 @njit(cache=True, nogil=True)
 def _to_probe(counts, groups, buckets, cap):
-    """Groups of ``groups`` worth probing: more points than twice the probe's, and a larger
-    count to go to."""
+    """Groups of ``groups`` worth probing (more points than twice the probe's, and a larger
+    count to go to), and the points their probes read."""
     out = np.empty(groups.size, dtype=np.int64)
     k = 0
+    work = 0
     for g in groups:
         if counts[g] > 2 * _PROBE * buckets[g] and _bucket_count(counts[g], cap) > buckets[g]:
             out[k] = g
             k += 1
-    return out[:k]
+            work += _PROBE * buckets[g]
+    return out[:k], work
+
+
+@njit(cache=True, nogil=True)
+def _probe_serially(x, y, w, weighted, starts, counts, probed, c, s, radius, core, budget, buckets, cap):
+    """The probes of :func:`_all_tasks` on one thread."""
+    rows = 16
+    for g in probed:
+        rows = max(rows, buckets[g])
+    acc = _scratch(rows)
+    for g in probed:
+        if _crowds(x, y, w, weighted, starts[g], c, s, radius[g], core[g], budget, buckets[g], acc):
+            buckets[g] = _bucket_count(counts[g], cap)
 
 
 @njit(parallel=True, cache=True, nogil=True)
@@ -384,12 +398,15 @@ def _all_tasks(x, y, w, weighted, starts, counts, groups, cos_t, sin_t, radius, 
     # groups large enough to pay for it are probed first, on their first direction: those whose
     # leading points crowd get a bucket per few points in every task (each group decided by
     # one iteration, from its own points: the same counts whatever the threads)
-    probed = _to_probe(counts, groups, buckets, cap)
-    for j in prange(probed.size):
-        g = probed[j]
-        acc = _scratch(buckets[g])
-        if _crowds(x, y, w, weighted, starts[g], cos_t[0], sin_t[0], radius[g], core[g], budget, buckets[g], acc):
-            buckets[g] = _bucket_count(counts[g], cap)
+    probed, work = _to_probe(counts, groups, buckets, cap)
+    if work > RUN_POINTS:
+        for j in prange(probed.size):
+            g = probed[j]
+            acc = _scratch(buckets[g])
+            if _crowds(x, y, w, weighted, starts[g], cos_t[0], sin_t[0], radius[g], core[g], budget, buckets[g], acc):
+                buckets[g] = _bucket_count(counts[g], cap)
+    else:  # less work than a run: a parallel region of its own would cost more than it saves
+        _probe_serially(x, y, w, weighted, starts, counts, probed, cos_t[0], sin_t[0], radius, core, budget, buckets, cap)
     # np.empty, not np.zeros: numba would make a parallel loop of each fill, handed out one
     # element at a time under thread_limit (every task writes its entries below)
     exact = np.empty(groups.size * m)

@@ -203,6 +203,15 @@ def _pieces_per_group(piece_group, n_groups):
 
 
 @njit(cache=True, nogil=True)
+def _any_split(alone):
+    """Whether some group has several pieces."""
+    for g in range(alone.size):
+        if alone[g] > 1:
+            return True
+    return False
+
+
+@njit(cache=True, nogil=True)
 def _group_totals(part, piece_group, piece_start, piece_stop, n_groups):
     """Per group, from its pieces in order: Σw, Σ_{i<j} w_i w_j (each piece's own pairs plus
     its weight times the weight of the pieces before it: non-negative terms only), the centre
@@ -266,13 +275,17 @@ def centre_pieces(x, y, w, weighted, moved, index, centred, piece_group, piece_s
             first, stop = piece_start[k], piece_stop[k]
             _sum_piece(x, y, w, weighted, moved, index, centred, whole, first, stop, out, part[k])
     # pass 2, pieces of groups of several: subtract, distances from the centre and their sums
-    weight_sum, pair_weight, centres, _, _ = _group_totals(part, piece_group, piece_start, piece_stop, n_groups)
-    for j in prange(blocks.size - 1):
-        for k in range(blocks[j], blocks[j + 1]):
-            g = piece_group[k]
-            if centred and alone[g] > 1:
-                first, stop = piece_start[k], piece_stop[k]
-                top, swr = _subtract(xo, yo, w_out, weighted, first, stop, centres[g, 0], centres[g, 1])
-                part[k, 10], part[k, 11] = top, swr
-    _, _, _, radius_max, radius_sum = _group_totals(part, piece_group, piece_start, piece_stop, n_groups)
+    weight_sum, pair_weight, centres, radius_max, radius_sum = _group_totals(
+        part, piece_group, piece_start, piece_stop, n_groups
+    )
+    if centred and _any_split(alone):
+        # (no such pieces, as with a thousand small groups: no parallel region to wait for)
+        for j in prange(blocks.size - 1):
+            for k in range(blocks[j], blocks[j + 1]):
+                g = piece_group[k]
+                if alone[g] > 1:
+                    first, stop = piece_start[k], piece_stop[k]
+                    top, swr = _subtract(xo, yo, w_out, weighted, first, stop, centres[g, 0], centres[g, 1])
+                    part[k, 10], part[k, 11] = top, swr
+        _, _, _, radius_max, radius_sum = _group_totals(part, piece_group, piece_start, piece_stop, n_groups)
     return weight_sum, pair_weight, radius_max, radius_sum
