@@ -482,8 +482,10 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
 
 
 #: points binned at a time in one pass: each group's windows then take many points per visit
-#: (they stay in cache), not a few scattered ones
-ONE_PASS_CHUNK = 1 << 22
+#: (they stay in cache), not a few scattered ones. At 1,000 groups the windows (524 MB) are
+#: streamed from memory once per chunk: 8M points save 3 of 21 CPU seconds at 1e8 over 4M,
+#: for 0.3 GiB more
+ONE_PASS_CHUNK = 1 << 23
 
 
 def _coded_chunks(parts: LayerParts, fields, group_by, weight, setup, batch_rows: int, registry: KeyRegistry):
