@@ -330,28 +330,31 @@ class OnePass:
                 )  # fmt: skip
 
     def __getstate__(self) -> dict:
-        """What travels between processes: the arenas up to the last window handed out (the
-        zeros beyond are not sent), the kept points as one array each, no compiled module."""
-        state = {k: v for k, v in vars(self).items() if k not in ("_kernel", "cos_t", "sin_t")}
-        state["arenas"] = [
-            tuple(part[: min(ARENA_WINDOWS, self.used - a * ARENA_WINDOWS)] for part in arena)
-            for a, arena in enumerate(self.arenas)
-            if a * ARENA_WINDOWS < self.used
-        ]
+        """What travels between processes: the bins that hold points, of the windows handed out
+        (a bin with no point holds zeros; most bins are empty until a group has several points
+        per bin), the kept points as one array each, and no compiled module."""
+        state = {k: v for k, v in vars(self).items() if k not in ("_kernel", "arenas", "cos_t", "sin_t")}
+        state["arenas"] = [self._packed(a) for a in range(len(self.arenas)) if a * ARENA_WINDOWS < self.used]
         state["kept"] = [self._kept_arrays()] if self.kept else []
         return state
+
+    def _packed(self, a: int) -> tuple:
+        """Arena ``a`` up to the last window handed out: exponents, origins, which bins hold
+        points (one bit each) and those bins' sums."""
+        cells, expo, origin = (part[: min(ARENA_WINDOWS, self.used - a * ARENA_WINDOWS)] for part in self.arenas[a])
+        held = cells[..., cells.shape[-1] - 1 if cells.shape[-1] == 4 else 0] > 0.0
+        return expo, origin, held.shape, np.packbits(held, axis=None), cells[held]
 
     def __setstate__(self, state: dict) -> None:
         self.__dict__.update(state)
         self._kernel = compiled_module("dyadic")
         self.cos_t, self.sin_t = directions_unit_vectors(self.m)
-        for a, arena in enumerate(self.arenas):
-            # whole arenas of writable arrays (a received buffer may be read-only or short)
-            if arena[0].shape[0] < ARENA_WINDOWS or not all(part.flags.writeable for part in arena):
-                fresh = self._kernel.new_windows(ARENA_WINDOWS, self.m, self.bins, bool(self.weighted))
-                for target, part in zip(fresh, arena, strict=True):
-                    target[: part.shape[0]] = part
-                self.arenas[a] = fresh
+        for a, (expo, origin, shape, bits, sums) in enumerate(state["arenas"]):
+            arena = self._kernel.new_windows(ARENA_WINDOWS, self.m, self.bins, bool(self.weighted))
+            held = np.unpackbits(bits, count=int(np.prod(shape))).reshape(shape).view(bool)
+            arena[0][: shape[0]][held] = sums
+            arena[1][: shape[0]], arena[2][: shape[0]] = expo, origin
+            self.arenas[a] = arena
 
     def finish(self) -> GroupPairSums:
         """Every group's total and guaranteed interval (groups in code order).
