@@ -238,31 +238,31 @@ class KeyRegistry:
         for values in fields[::-1]:
             rest, position = np.divmod(rest, len(values))
             positions.append((values, (position - 1).tolist()))
-        out = np.empty(len(combinations), dtype=np.int64)
-        new, codes = [], self.codes
-        for i in range(len(combinations)):
-            key = tuple(values[at[i]] for values, at in positions[::-1])  # as _key makes it
-            code = codes.get(key)
-            if code is None:
-                code = codes[key] = len(codes)
-                new.append(i)
-            out[i] = code
+        keys = (tuple(values[at[i]] for values, at in positions[::-1]) for i in range(len(combinations)))
+        out, new = self._running(keys, len(combinations))  # keys as _key makes them
         if new:
             self.rows.append(_plain(frame.iloc[first[new]].reset_index(drop=True)))
         return out[local]
 
-    def _add_values(self, uniques: pd.Index, column: pd.Series, local: np.ndarray) -> np.ndarray:
-        """Running codes of the distinct non-null values ``uniques`` of one key field, then
-        (last, for the code -1 of nulls) that of the null key, if ``column`` has nulls."""
-        out = np.zeros(len(uniques) + 1, dtype=np.int64)
+    def _running(self, keys, size: int) -> tuple[np.ndarray, list[int]]:
+        """Running codes of distinct ``keys`` (new ones registered, in order) in an array of
+        ``size``, and the positions of the new ones."""
+        out = np.zeros(size, dtype=np.int64)
         new, codes = [], self.codes
-        for i, value in enumerate(uniques.tolist()):
-            key = (value,)  # as _key makes it: the value itself (1 and 1.0 alike)
+        for i, key in enumerate(keys):
             code = codes.get(key)
             if code is None:
                 code = codes[key] = len(codes)
                 new.append(i)
             out[i] = code
+        return out, new
+
+    def _add_values(self, uniques: pd.Index, column: pd.Series, local: np.ndarray) -> np.ndarray:
+        """Running codes of the distinct non-null values ``uniques`` of one key field, then
+        (last, for the code -1 of nulls) that of the null key, if ``column`` has nulls."""
+        # keys as _key makes them: the value itself (1 and 1.0 alike); the last slot for nulls
+        out, new = self._running(((value,) for value in uniques.tolist()), len(uniques) + 1)
+        codes = self.codes
         if new:
             self.rows.append(_plain(pd.DataFrame({self.fields[0]: uniques[new]})))
         nulls = np.flatnonzero(local < 0)
