@@ -19,12 +19,12 @@ key table, and the points of groups kept for exact sums or read again (at most
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from . import estimate, streaming
+from . import streaming
 from .batchkeys import KeyRegistry, KeyTable
 from .cluster import reduce_parts
 from .estimate.single_pass import GATHER_POINTS, OnePass, TooLarge
@@ -125,11 +125,10 @@ def pair_sums(parts, *, group_by, weight, setup, batch_rows, tolerance, method, 
     Returns ``(sums, keys)``: the sums with groups in the order of ``keys`` (a
     :class:`~toolbox.batchkeys.KeyTable`), as :func:`toolbox.streaming.one_pass_sums` gives them.
     """
-    if setup.kind != "planar" or tolerance == 0 or method == "exact" or not streaming._compiled_kernels():
+    if not streaming.one_pass_suits(setup, tolerance, method):
         return None
     group_by = tuple(group_by or ())
-    fields = [*group_by, *([weight] if weight else [])]
-    parts.check_fields(fields)
+    fields = streaming.one_pass_fields(parts, group_by, weight)
     common = dict(group_by=group_by, weight=weight, setup=setup)
     summarise = functools.partial(_add_batch, **common, tolerance=tolerance, method=method)
     try:
@@ -152,12 +151,5 @@ def pair_sums(parts, *, group_by, weight, setup, batch_rows, tolerance, method, 
         keys = KeyTable(group_by, sketch.rows() if group_by else pd.DataFrame(index=range(1)))
         pick = functools.partial(_pick, keys=keys, code_of=code_of, weight=weight, setup=setup)
         picked = reduce_parts(parts, fields, batch_rows, pick, _concat, in_place=True, client=client)
-        x, y, w, codes = _joined(picked)
-        points = estimate.Points.build(x, y, codes, again.size, w, distance=setup)
-        closer = estimate.pair_sums(points, tolerance=tolerance, method=method)
-        for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
-            getattr(sums, name)[again] = getattr(closer, name)
-    keys, order = sketch.registry.table()
-    position = np.empty_like(order)
-    position[order] = np.arange(order.size)  # running code of every row of keys
-    return replace(sums, **{k: v[position] for k, v in vars(sums).items()}), keys
+        streaming.sum_again(sums, again, picked, setup, tolerance, method)
+    return streaming.in_key_order(sums, sketch.registry)

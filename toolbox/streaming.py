@@ -436,17 +436,11 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
     """
     from .estimate.single_pass import GATHER_POINTS, OnePass, TooLarge
 
-    if setup.kind != "planar" or tolerance == 0 or method == "exact" or not _compiled_kernels():
+    if not one_pass_suits(setup, tolerance, method):
         return None
     group_by = tuple(group_by or ())
-    fields = [*group_by, *([weight] if weight else [])]
-    parts.check_fields(fields)
+    fields = one_pass_fields(parts, group_by, weight)
     registry, sketch = KeyRegistry(group_by), OnePass(tolerance=tolerance, method=method)
-
-    def coded():
-        for batch in prefetched(_coded_batches(parts, fields, weight, setup, batch_rows, registry)):
-            yield batch, batch.codes
-
     try:
         for x, y, w, running, n_groups in _coded_chunks(parts, fields, group_by, weight, setup, batch_rows, registry):
             sketch.add(x, y, w, running, n_groups)  # keeps no reference to the arrays: they are reused
@@ -461,20 +455,46 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
             return None
         known = registry.count
         picked = []
-        for decoded, running in coded():
+        for batch in prefetched(_coded_batches(parts, fields, weight, setup, batch_rows, registry)):
             if registry.count != known:
                 raise _changed(parts.label)
-            keep = np.isin(running, again)
-            w = None if decoded.w is None else decoded.w[keep]
-            picked.append((decoded.x[keep], decoded.y[keep], w, np.searchsorted(again, running[keep])))
-        x, y, w, codes = (list(column) for column in zip(*picked, strict=True))
-        points = estimate.Points.build(
-            np.concatenate(x), np.concatenate(y), np.concatenate(codes), again.size,
-            None if w[0] is None else np.concatenate(w), distance=setup,
-        )  # fmt: skip
-        closer = estimate.pair_sums(points, tolerance=tolerance, method=method)
-        for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
-            getattr(sums, name)[again] = getattr(closer, name)
+            keep = np.isin(batch.codes, again)
+            w = None if batch.w is None else batch.w[keep]
+            picked.append((batch.x[keep], batch.y[keep], w, np.searchsorted(again, batch.codes[keep])))
+        sum_again(sums, again, picked, setup, tolerance, method)
+    return in_key_order(sums, registry)
+
+
+def one_pass_suits(setup, tolerance, method) -> bool:
+    """Whether the one pass can give these sums: planar distances, a projection (tolerance above
+    0, not exact sums) and the compiled kernels."""
+    return setup.kind == "planar" and tolerance != 0 and method != "exact" and _compiled_kernels()
+
+
+def one_pass_fields(parts: LayerParts, group_by: tuple, weight) -> list[str]:
+    """The fields a one pass reads (checked against the layer)."""
+    fields = [*group_by, *([weight] if weight else [])]
+    parts.check_fields(fields)
+    return fields
+
+
+def sum_again(sums, again: np.ndarray, picked: list, setup, tolerance, method) -> None:
+    """Put into ``sums`` the sums of groups ``again`` (over their budget in one pass) from their
+    points read again, ``picked``: (x, y, w or None, index into ``again``) parts, summed as a
+    layer read whole would be."""
+    x, y, w, codes = (list(column) for column in zip(*picked, strict=True))
+    points = estimate.Points.build(
+        np.concatenate(x), np.concatenate(y), np.concatenate(codes), again.size,
+        None if w[0] is None else np.concatenate(w), distance=setup,
+    )  # fmt: skip
+    closer = estimate.pair_sums(points, tolerance=tolerance, method=method)
+    for name in ("total", "lower", "upper", "rel_bound", "exact", "directions", "note"):
+        getattr(sums, name)[again] = getattr(closer, name)
+
+
+def in_key_order(sums, registry: KeyRegistry):
+    """``(sums, keys)``: sums of groups in running-code order put in the order of the
+    registry's key table, and that table."""
     keys, order = registry.table()
     position = np.empty_like(order)
     position[order] = np.arange(order.size)  # running code of every row of keys

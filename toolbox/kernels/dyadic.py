@@ -77,6 +77,18 @@ def _cover(cells, expo, origin, slot, d, lo, hi):
 
 
 @njit(cache=True, nogil=True)
+def _held_edges(window, o, e, lo, hi):
+    """[lo, hi] widened by the left edge of every bin of ``window`` that holds points: at a
+    coarser exponent a bin lies inside one new bin, the one its left edge falls in."""
+    count = _count_column(window)
+    for j in range(window.shape[0]):
+        if window[j, count] > 0.0:
+            lo = min(lo, math.ldexp(float(o + j), e))
+            hi = max(hi, math.ldexp(float(o + j), e))
+    return lo, hi
+
+
+@njit(cache=True, nogil=True)
 def _rebin(cells, expo, origin, slot, d, lo, hi, e_min):
     """Re-bin the open window (slot, d) at an exponent of at least ``e_min`` (and at least its
     own) that holds its values and every value in [lo, hi]."""
@@ -84,10 +96,7 @@ def _rebin(cells, expo, origin, slot, d, lo, hi, e_min):
     e, o = expo[slot, d], origin[slot, d]
     window = cells[slot, d]
     count = _count_column(window)
-    for j in range(bins):  # the bins held so far join the new values, each by its left edge:
-        if window[j, count] > 0.0:  # at a coarser exponent a bin lies inside one new bin,
-            lo = min(lo, math.ldexp(float(o + j), e))  # the one its edge falls in
-            hi = max(hi, math.ldexp(float(o + j), e))
+    lo, hi = _held_edges(window, o, e, lo, hi)  # the bins held so far join the new values
     e_new = max(e, e_min, _fit(lo, hi, bins))
     a, b = _index(lo, e_new), _index(hi, e_new)
     new_o = a - (bins - (b - a + 1)) // 2
@@ -127,11 +136,7 @@ def merge_windows(cells, expo, origin, slots, src_cells, src_expo, src_origin, s
             src = src_cells[s, d]
             count = _count_column(src)
             o_b = src_origin[s, d]
-            lo, hi = np.inf, -np.inf
-            for j in range(bins):
-                if src[j, count] > 0.0:
-                    lo = min(lo, math.ldexp(float(o_b + j), e_b))
-                    hi = max(hi, math.ldexp(float(o_b + j), e_b))
+            lo, hi = _held_edges(src, o_b, e_b, np.inf, -np.inf)
             if lo > hi:
                 continue
             if expo[slot, d] == EMPTY:
