@@ -89,25 +89,33 @@ def _held_edges(window, o, e, lo, hi):
 
 
 @njit(cache=True, nogil=True)
+def _add_bins(window, e, o, src, e_src, o_src):
+    """Add every held bin of ``src`` (exponent ``e_src``, origin ``o_src``) to the bin of
+    ``window`` (exponent ``e`` ≥ ``e_src``, origin ``o``) its left edge falls in; ``window``
+    must hold them all."""
+    count = _count_column(src)
+    for j in range(src.shape[0]):
+        if src[j, count] == 0.0:
+            continue
+        t = _index(math.ldexp(float(o_src + j), e_src), e) - o
+        for c in range(window.shape[1]):
+            window[t, c] += src[j, c]
+
+
+@njit(cache=True, nogil=True)
 def _rebin(cells, expo, origin, slot, d, lo, hi, e_min):
     """Re-bin the open window (slot, d) at an exponent of at least ``e_min`` (and at least its
     own) that holds its values and every value in [lo, hi]."""
     bins = cells.shape[2]
     e, o = expo[slot, d], origin[slot, d]
     window = cells[slot, d]
-    count = _count_column(window)
     lo, hi = _held_edges(window, o, e, lo, hi)  # the bins held so far join the new values
     e_new = max(e, e_min, _fit(lo, hi, bins))
     a, b = _index(lo, e_new), _index(hi, e_new)
     new_o = a - (bins - (b - a + 1)) // 2
     old = window.copy()
     window[:, :] = 0.0
-    for j in range(bins):
-        if old[j, count] == 0.0:
-            continue
-        t = _index(math.ldexp(float(o + j), e), e_new) - new_o
-        for c in range(window.shape[1]):
-            window[t, c] += old[j, c]
+    _add_bins(window, e_new, new_o, old, e, o)
     expo[slot, d] = e_new
     origin[slot, d] = new_o
 
@@ -124,7 +132,7 @@ def merge_windows(cells, expo, origin, slots, src_cells, src_expo, src_origin, s
     windows then sit in different bins exactly when their values are ordered across bins. Not
     parallel: a merge runs a few times per pass, and re-binning copies a window.
     """
-    m, bins = cells.shape[1], cells.shape[2]
+    m = cells.shape[1]
     for k in range(slots.size):
         slot, s = slots[k], src_slots[k]
         if slot < 0 or s < 0:
@@ -134,7 +142,6 @@ def merge_windows(cells, expo, origin, slots, src_cells, src_expo, src_origin, s
             if e_b == EMPTY:
                 continue
             src = src_cells[s, d]
-            count = _count_column(src)
             o_b = src_origin[s, d]
             lo, hi = _held_edges(src, o_b, e_b, np.inf, -np.inf)
             if lo > hi:
@@ -144,14 +151,7 @@ def merge_windows(cells, expo, origin, slots, src_cells, src_expo, src_origin, s
                 expo[slot, d], origin[slot, d] = e_b, o_b
                 continue
             _rebin(cells, expo, origin, slot, d, lo, hi, e_b)
-            e, o = expo[slot, d], origin[slot, d]
-            window = cells[slot, d]
-            for j in range(bins):
-                if src[j, count] == 0.0:
-                    continue
-                t = _index(math.ldexp(float(o_b + j), e_b), e) - o
-                for c in range(window.shape[1]):
-                    window[t, c] += src[j, c]
+            _add_bins(cells[slot, d], expo[slot, d], origin[slot, d], src, e_b, o_b)
 
 
 @njit(parallel=True, cache=True, nogil=True)
