@@ -92,7 +92,7 @@ def job_decode(folder: str) -> dict:
     parts = layer_parts(folder)
     setup = estimate.distance_setup(parts.crs, parts.label)
     registry = KeyRegistry(("zone",))
-    chunks = streaming._coded_chunks(parts, ["zone", "residents"], ("zone",), "residents", setup, BATCH_ROWS, registry)
+    chunks = streaming._coded_chunks(parts, ["zone", "residents"], "residents", setup, BATCH_ROWS, registry)
     points = 0
     for x, _, _, _, _ in chunks:
         points += x.size

@@ -141,7 +141,7 @@ def test_one_pass_chunks_hold_every_point_once_in_order(homes_gpkg, homes, monke
     monkeypatch.setattr(streaming, "ONE_PASS_CHUNK", 40)  # batches of 33 split across chunks
     parts = layer_parts(homes_gpkg.path, **homes_gpkg.kwargs)
     registry = batchkeys.KeyRegistry(("zone",))
-    chunks = streaming._coded_chunks(parts, ["zone", "pop"], ("zone",), "pop", PLANAR, 33, registry)
+    chunks = streaming._coded_chunks(parts, ["zone", "pop"], "pop", PLANAR, 33, registry)
     got, buffers = [], []
     for x, y, w, codes, n_groups in chunks:
         assert codes.max() < n_groups
@@ -163,7 +163,7 @@ def test_one_pass_chunks_stop_their_reader_when_left_early(homes_gpkg):
 
     parts = layer_parts(homes_gpkg.path, **homes_gpkg.kwargs)
     registry = batchkeys.KeyRegistry(("zone",))
-    chunks = streaming._coded_chunks(parts, ["zone"], ("zone",), None, PLANAR, 5, registry)
+    chunks = streaming._coded_chunks(parts, ["zone"], None, PLANAR, 5, registry)
     next(chunks)  # the reader has filled the second buffer and waits for the first
     chunks.close()
     assert not [t for t in threading.enumerate() if t.name == "pairspread-reader"]

@@ -170,15 +170,7 @@ class KeyRegistry:
         if not self.fields:
             return np.zeros(1, dtype=np.int64)
         frame = keys[list(self.fields)]
-        out = np.empty(len(frame), dtype=np.int64)
-        new = []
-        for i, row in enumerate(frame.to_numpy(dtype=object)):
-            key = _key(row)
-            code = self.codes.get(key)
-            if code is None:
-                code = self.codes[key] = len(self.codes)
-                new.append(i)
-            out[i] = code
+        out, new = self._running((_key(row) for row in frame.to_numpy(dtype=object)), len(frame))
         if new:
             self.rows.append(_plain(frame.iloc[new]))
         return out
@@ -295,6 +287,13 @@ class KeyRegistry:
         wider[uniques.astype(np.int64) - lo] = running
         self._table, self._table_start = wider, lo
         return running[local]
+
+    def running_table(self) -> KeyTable:
+        """The keys met so far in running-code order: row ``i`` is the group of running code ``i``."""
+        if not self.fields:
+            return KeyTable((), pd.DataFrame(index=range(1)))
+        rows = pd.concat(self.rows, ignore_index=True) if self.rows else pd.DataFrame(columns=list(self.fields))
+        return KeyTable(self.fields, rows)
 
     def table(self) -> tuple[KeyTable, np.ndarray]:
         """The sorted key table, and the code in it of every running code."""

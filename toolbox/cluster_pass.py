@@ -22,7 +22,6 @@ import functools
 from dataclasses import dataclass, field
 
 import numpy as np
-import pandas as pd
 
 from . import streaming
 from .batchkeys import KeyRegistry, KeyTable
@@ -59,13 +58,6 @@ class Sketch:
             self.state.add(x, y, w, codes, self.registry.count)
         return self
 
-    def rows(self) -> pd.DataFrame:
-        """The registry's keys, row ``i`` the group of running code ``i``."""
-        fields = list(self.registry.fields)
-        if not self.registry.rows:
-            return pd.DataFrame(columns=fields)
-        return pd.concat(self.registry.rows, ignore_index=True)
-
 
 def _joined(batches: list) -> tuple:
     """Batches ``(x, y, w or None, codes)`` as one."""
@@ -97,7 +89,7 @@ def _merge(sketches: list[Sketch]) -> Sketch:
     out = sketches[0].settle()
     for other in sketches[1:]:
         other.settle()
-        codes = out.registry.add(other.rows())
+        codes = out.registry.add(other.registry.running_table().keys)
         out.state.merge(other.state, codes, out.registry.count)
     return out
 
@@ -148,7 +140,7 @@ def pair_sums(parts, *, group_by, weight, setup, batch_rows, tolerance, method, 
             return None
         code_of = np.full(state.n_groups, -1, dtype=np.int64)
         code_of[again] = np.arange(again.size)
-        keys = KeyTable(group_by, sketch.rows() if group_by else pd.DataFrame(index=range(1)))
+        keys = sketch.registry.running_table()
         pick = functools.partial(_pick, keys=keys, code_of=code_of, weight=weight, setup=setup)
         picked = reduce_parts(parts, fields, batch_rows, pick, _concat, in_place=True, client=client)
         streaming.sum_again(sums, again, picked, setup, tolerance, method)

@@ -65,34 +65,12 @@ SPILL_BYTES_PER_POINT = 28
 # pass 1: decode, code and survey every batch
 
 
-@dataclass
-class _Decoded:
-    """One batch in the estimator's coordinates with its batch-local group codes and keys."""
-
-    x: np.ndarray
-    y: np.ndarray
-    w: np.ndarray | None
-    local_codes: np.ndarray
-    keys: KeyTable
-
-
 @dataclass(frozen=True)
 class _Surveyed:
     """Group keys and the survey of some batches, its groups coded as the keys' rows."""
 
     keys: KeyTable
     survey: Survey
-
-
-def _decode(batch: PointLayer, group_by, weight, setup) -> _Decoded:
-    weights = grouping.feature_weights(batch.attributes, weight, batch.label)
-    x, y = setup.coordinates(batch.x, batch.y, batch.crs, batch.label)
-    local = grouping.group_features(batch.attributes, list(group_by))
-    # one point per feature (no MultiPoint): point i is feature i, no gathering needed
-    per_row = None if batch.feature.size == len(batch.attributes) else batch.feature
-    codes = local.codes if per_row is None else local.codes[per_row]
-    w = weights if weights is None or per_row is None else weights[per_row]
-    return _Decoded(x, y, w, codes, KeyTable(tuple(group_by), local.keys.reset_index(drop=True)))
 
 
 @dataclass
@@ -136,14 +114,13 @@ def _coded_batches(parts: LayerParts, fields, weight, setup, batch_rows: int, ke
         yield _coded(batch, weight, setup, keys)
 
 
-def _points(decoded: _Decoded, codes: np.ndarray, n_groups: int, setup) -> estimate.Points:
-    return estimate.Points.build(decoded.x, decoded.y, codes, n_groups, decoded.w, distance=setup)
-
-
 def _survey_batch(batch: PointLayer, group_by, weight, setup) -> _Surveyed:
-    decoded = _decode(batch, group_by, weight, setup)
-    count = max(decoded.keys.count, 1)
-    return _Surveyed(decoded.keys, Survey.of(_points(decoded, decoded.local_codes, count, setup)))
+    """On a worker: a batch's groups (coded by a registry of its own) and their survey."""
+    registry = KeyRegistry(tuple(group_by))
+    coded = _coded(batch, weight, setup, registry)
+    keys, order = registry.table()  # sorted as a whole-layer read sorts its groups
+    coded.codes, coded.n_groups = order[coded.codes], max(coded.n_groups, 1)  # no rows: one empty group
+    return _Surveyed(keys, Survey.of(_points_of(coded, setup)))
 
 
 def recode_survey(survey: Survey, mapping: np.ndarray, n_groups: int) -> Survey:
@@ -231,7 +208,7 @@ def _spill_folder(parts: LayerParts) -> str | None:
 # the prepared layer
 
 
-def _batch_then(batch: PointLayer, keys: KeyTable, group_by, weight, setup, then: Callable, into=None):
+def _batch_then(batch: PointLayer, keys: KeyTable, weight, setup, then: Callable, into=None):
     """On a worker: decode a batch, code its groups as ``keys`` does, and add it with ``then``."""
     return then(_points_of(_coded(batch, weight, setup, keys), setup), into=into)
 
@@ -308,7 +285,6 @@ class Prepared:
         then = functools.partial(
             _batch_then,
             keys=self.keys,
-            group_by=self.group_by,
             weight=self.weight,
             setup=self.setup,
             then=accumulate,
@@ -442,7 +418,7 @@ def one_pass_sums(parts: LayerParts, *, group_by, weight, setup, batch_rows, tol
     fields = one_pass_fields(parts, group_by, weight)
     registry, sketch = KeyRegistry(group_by), OnePass(tolerance=tolerance, method=method)
     try:
-        for x, y, w, running, n_groups in _coded_chunks(parts, fields, group_by, weight, setup, batch_rows, registry):
+        for x, y, w, running, n_groups in _coded_chunks(parts, fields, weight, setup, batch_rows, registry):
             sketch.add(x, y, w, running, n_groups)  # keeps no reference to the arrays: they are reused
     except TooLarge:
         return None
@@ -508,7 +484,7 @@ def in_key_order(sums, registry: KeyRegistry):
 ONE_PASS_CHUNK = 1 << 23
 
 
-def _coded_chunks(parts: LayerParts, fields, group_by, weight, setup, batch_rows: int, registry: KeyRegistry):
+def _coded_chunks(parts: LayerParts, fields, weight, setup, batch_rows: int, registry: KeyRegistry):
     """The layer's points in chunks of ``max(batch_rows, ONE_PASS_CHUNK)`` points (the last may
     be smaller), groups coded by ``registry`` as they come: ``(x, y, w, codes, n_groups)``,
     codes below ``n_groups``.
